@@ -1,0 +1,80 @@
+"""The Python API: the one place that knows the order of the stages.
+
+read table -> design -> statistics (main pass, exact pass when needed) -> diagnostics -> judge
+-> verdict. Artefact writers take the verdict and never recompute.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from gate.design import Design, finish_design, plan_design
+from gate.diagnostics import Diagnostics, compute_diagnostics, plan_exact_pass
+from gate.errors import DesignError
+from gate.judge import judge, status_of
+from gate.passes import exact_pass, main_pass
+from gate.policy import Policy, load_policy, today_utc
+from gate.table import open_table
+from gate.verdict import TableInfo, Verdict, tool_version
+
+
+def check(table: Any, policy: Policy | str | Path | None = None, *, label: str | None = None,
+          today: dt.date | None = None, chunk_rows: int | None = None) -> Verdict:
+    """Check a feature table against a policy.
+
+    Parameters
+    ----------
+    table : path (Parquet file or folder, CSV, Feather/Arrow), pandas DataFrame or pyarrow Table
+    policy : a :class:`Policy`, a path to a policy YAML file, or None for the packaged default
+    label : free text carried into the verdict (e.g. a pipeline run id)
+    today : the date waivers are judged against (default: today, UTC)
+    chunk_rows : rows per chunk of the streaming passes (default: sized from the width)
+    """
+    policy = policy if isinstance(policy, Policy) else load_policy(policy)
+    source = open_table(table)
+    plan = plan_design(source, policy)
+    full_gram, counts = main_pass(source, plan, chunk_rows=chunk_rows)
+    design = finish_design(plan, full_gram, counts)
+    gram = full_gram.select(np.asarray(design.selection, dtype=np.intp))
+    _check_rows(design, gram.rows, gram.weight_sum, source.name)
+
+    tolerance = policy.limits.rank_deficiency.tolerance
+    exact = plan_exact_pass(gram, tolerance=tolerance)
+    factor = exact_pass(source, plan, design.selection, exact, chunk_rows=chunk_rows) \
+        if exact.needs_exact_pass else None
+    diagnostics = compute_diagnostics(
+        gram, exact, factor=factor, groups=tuple(g.indices for g in design.groups),
+        scaling=policy.limits.condition_number.scaling)
+    return build_verdict(diagnostics, design, policy, source_name=source.name,
+                         sha256=source.sha256(), label=label, today=today)
+
+
+def build_verdict(diagnostics: Diagnostics, design: Design, policy: Policy, *,
+                  source_name: str, sha256: str | None, label: str | None = None,
+                  today: dt.date | None = None) -> Verdict:
+    findings, waivers = judge(diagnostics, design, policy, today or today_utc())
+    counts = design.counts
+    return Verdict(
+        status=status_of(findings), findings=findings, waivers=waivers,
+        table=TableInfo(source_name, sha256, counts.read, counts.used, counts.dropped,
+                        dict(counts.missing)),
+        policy=policy, design=design, diagnostics=diagnostics, label=label,
+        created_at=dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+        tool_version=tool_version(),
+    )
+
+
+def _check_rows(design: Design, rows: int, weight_sum: float, name: str) -> None:
+    counts = design.counts
+    if weight_sum <= 0.0 and counts.used > 0:
+        raise DesignError(f"{name}: weight column '{design.weight}' sums to zero over the used "
+                          "rows; give some rows a positive weight")
+    if rows < 2:
+        worst = max(counts.missing.items(), key=lambda kv: kv[1], default=None)
+        why = f"; column '{worst[0]}' has {worst[1]} missing" if worst else ""
+        raise DesignError(f"{name}: {rows} usable row{'s' if rows != 1 else ''} after dropping "
+                          f"missing values (of {counts.read}); at least 2 are needed{why}")

@@ -1,0 +1,1 @@
+"""Writers, one per artefact. They read a Verdict and never recompute."""

@@ -1,0 +1,314 @@
+"""From table columns to the design matrix the policy describes.
+
+``plan_design`` resolves the policy's globs against the table's columns, checks their types and
+reads the categorical levels (a cheap pass over only those columns). ``encode_block`` turns one
+chunk of rows into a float block: numeric and boolean columns as they are, categorical columns
+one-hot over *all* levels, rows with missing values dropped (or refused). ``finish_design``
+picks the reference level per categorical (the first sorted level still present among the used
+rows) once the main pass has seen every row, so a level that vanished with the dropped rows
+never becomes a spurious constant column.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from gate.errors import DesignError, TableError
+from gate.policy import Policy
+from gate.statistics import CentredGram, FloatArray
+from gate.table import DEFAULT_CHUNK_ROWS, TableSource
+
+#: One-hot encoding a column with more levels than this is almost always a mistake (an id).
+MAX_LEVELS = 500
+#: Blocks are sized to about this many bytes, so memory does not grow with the feature count.
+BLOCK_BYTES = 64 * 1024 * 1024
+GLOB_CHARS = set("*?[")
+
+
+@dataclass(frozen=True)
+class Categorical:
+    column: str
+    levels: tuple[str, ...]  # every level seen, sorted
+
+
+@dataclass(frozen=True)
+class DesignPlan:
+    """What to read and how to encode it (known before the main pass)."""
+
+    table: str
+    parts: tuple[str | Categorical, ...]  # selected columns in table order
+    weight: str | None
+    missing: str
+
+    @property
+    def numeric(self) -> tuple[str, ...]:
+        return tuple(p for p in self.parts if isinstance(p, str))
+
+    @property
+    def read_columns(self) -> tuple[str, ...]:
+        names = [p if isinstance(p, str) else p.column for p in self.parts]
+        return tuple(names + ([self.weight] if self.weight else []))
+
+    @property
+    def layout(self) -> tuple[str, ...]:
+        """Accumulated columns: numeric columns, and one column per level of each categorical."""
+        out: list[str] = []
+        for part in self.parts:
+            if isinstance(part, str):
+                out.append(part)
+            else:
+                out.extend(f"{part.column}={level}" for level in part.levels)
+        return tuple(out)
+
+    def chunk_rows(self, requested: int | None) -> int:
+        if requested is not None:
+            return max(1, requested)
+        per_row = 8 * max(len(self.layout), 1)
+        return int(min(max(BLOCK_BYTES // per_row, 1024), 4 * DEFAULT_CHUNK_ROWS))
+
+
+@dataclass
+class RowCounts:
+    """Rows seen, used and dropped, and missing values per column (mergeable by addition)."""
+
+    read: int = 0
+    dropped: int = 0
+    missing: dict[str, int] = field(default_factory=dict)
+
+    @property
+    def used(self) -> int:
+        return self.read - self.dropped
+
+    def add(self, other: RowCounts) -> RowCounts:
+        missing = dict(self.missing)
+        for key, value in other.missing.items():
+            missing[key] = missing.get(key, 0) + value
+        return RowCounts(self.read + other.read, self.dropped + other.dropped, missing)
+
+
+@dataclass(frozen=True)
+class Group:
+    """A categorical column's dummies: one GVIF group."""
+
+    column: str
+    reference: str
+    levels: tuple[str, ...]  # levels with a dummy
+    indices: tuple[int, ...]  # their positions among the design columns
+
+
+@dataclass(frozen=True)
+class Design:
+    """The design after the main pass: names of the columns, groups, and which accumulated
+    columns they are."""
+
+    features: tuple[str, ...]
+    groups: tuple[Group, ...]
+    selection: tuple[int, ...]
+    weight: str | None
+    counts: RowCounts
+    notes: tuple[str, ...] = ()
+
+
+def plan_design(source: TableSource, policy: Policy) -> DesignPlan:
+    """Resolve column selection and types; read categorical levels."""
+    spec = policy.columns
+    columns = {c.name: c for c in source.columns}
+    names = list(columns)
+    for key, patterns in (("columns.include", spec.include),):
+        for pattern in patterns:
+            if not GLOB_CHARS & set(pattern) and pattern not in columns:
+                raise TableError(f"{source.name}: {key} names '{pattern}', which is not a "
+                                 f"column of the table; columns are: {_preview(names)}")
+    for name in spec.categorical:
+        if name not in columns:
+            raise TableError(f"{source.name}: columns.categorical names '{name}', which is not "
+                             f"a column of the table; columns are: {_preview(names)}")
+    weight = spec.weight
+    if weight is not None:
+        if weight not in columns:
+            raise TableError(f"{source.name}: columns.weight names '{weight}', which is not a "
+                             f"column of the table; columns are: {_preview(names)}")
+        if columns[weight].kind not in ("numeric", "boolean"):
+            raise TableError(f"{source.name}: weight column '{weight}' has type "
+                             f"{columns[weight].type}; weights must be numeric")
+
+    selected = [
+        n for n in names
+        if any(fnmatch.fnmatchcase(n, p) for p in spec.include)
+        and not any(fnmatch.fnmatchcase(n, p) for p in spec.exclude)
+        and n != weight
+    ]
+    unusable = [n for n in selected
+                if columns[n].kind in ("datetime", "other") and n not in spec.categorical]
+    if unusable:
+        shown = ", ".join(f"'{n}' ({columns[n].type})" for n in unusable[:5])
+        raise TableError(f"{source.name}: column{'s' if len(unusable) > 1 else ''} {shown} "
+                         "cannot be a feature (dates and nested values have no linear meaning); "
+                         "add to columns.exclude, or list under columns.categorical")
+    if not selected:
+        raise DesignError(f"{source.name}: columns.include/exclude select no feature column; "
+                          f"columns are: {_preview(names)}")
+    to_encode = [n for n in selected
+                 if n in spec.categorical or columns[n].kind == "categorical"]
+    levels = _read_levels(source, to_encode)
+    parts: list[str | Categorical] = [
+        Categorical(n, levels[n]) if n in levels else n for n in selected
+    ]
+    return DesignPlan(source.name, tuple(parts), weight, policy.missing)
+
+
+def _read_levels(source: TableSource, names: list[str]) -> dict[str, tuple[str, ...]]:
+    if not names:
+        return {}
+    seen: dict[str, set[str]] = {n: set() for n in names}
+    for chunk in source.chunks(names, chunk_rows=1 << 20):
+        for name in names:
+            values = pc.unique(_as_text(chunk.column(name)))
+            seen[name].update(v for v in values.to_pylist() if v is not None)
+            if len(seen[name]) > MAX_LEVELS:
+                raise TableError(f"{source.name}: categorical column '{name}' has more than "
+                                 f"{MAX_LEVELS} distinct values; one-hot encoding it would add "
+                                 "that many features: exclude it or group its levels")
+    return {n: tuple(sorted(seen[n])) for n in names}
+
+
+def _as_text(column: pa.ChunkedArray | pa.Array) -> pa.ChunkedArray | pa.Array:
+    if pa.types.is_dictionary(column.type):
+        column = pc.cast(column, column.type.value_type)
+    if not (pa.types.is_string(column.type) or pa.types.is_large_string(column.type)):
+        column = pc.cast(column, pa.string())
+    return column
+
+
+def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
+                 ) -> tuple[FloatArray, FloatArray | None, RowCounts]:
+    """One chunk -> (values over ``plan.layout``, weights or None, row counts)."""
+    n = chunk.num_rows
+    width = len(plan.layout)
+    values = np.zeros((n, width))
+    missing_rows = np.zeros(n, dtype=bool)
+    missing: dict[str, int] = {}
+    position = 0
+    for part in plan.parts:
+        if isinstance(part, str):
+            column = _as_float(chunk.column(part))
+            values[:, position] = column
+            position += 1
+        else:
+            codes = pc.index_in(_as_text(chunk.column(part.column)),
+                                value_set=pa.array(part.levels, pa.string()))
+            codes_np = codes.to_numpy(zero_copy_only=False)
+            present = ~np.isnan(codes_np) if codes_np.dtype.kind == "f" else np.ones(n, bool)
+            rows = np.flatnonzero(present)
+            values[rows, position + codes_np[present].astype(np.intp)] = 1.0
+            absent = n - rows.size
+            if absent:
+                missing[part.column] = absent
+                missing_rows |= ~present
+            position += len(part.levels)
+
+    sums = values.sum(axis=0)  # cheap finiteness check first; explain precisely only on failure
+    if not np.isfinite(sums).all():
+        layout = plan.layout
+        for j in np.flatnonzero(~np.isfinite(sums)):
+            col = values[:, j]
+            infinite = int(np.isinf(col).sum())
+            if infinite:
+                raise DesignError(f"{plan.table}: column '{layout[j]}' has {infinite} infinite "
+                                  f"value{'s' if infinite > 1 else ''} in rows {first_row:,}-"
+                                  f"{first_row + n - 1:,}; replace them or exclude the column")
+            nan_rows = np.isnan(col)
+            if nan_rows.any():
+                missing[layout[j]] = int(nan_rows.sum())
+                missing_rows |= nan_rows
+
+    weights = None
+    if plan.weight is not None:
+        weights = _as_float(chunk.column(plan.weight))
+        _check_weights(plan, weights, first_row)
+
+    if missing:
+        if plan.missing == "fail":
+            name, count = next(iter(missing.items()))
+            raise DesignError(f"{plan.table}: column '{name}' has {count} missing value"
+                              f"{'s' if count > 1 else ''} in rows {first_row:,}-"
+                              f"{first_row + n - 1:,} and the policy says missing: fail; "
+                              "fill them, or set missing: drop_rows")
+        keep = ~missing_rows
+        values = values[keep]
+        if weights is not None:
+            weights = weights[keep]
+    counts = RowCounts(read=n, dropped=int(missing_rows.sum()), missing=missing)
+    return values, weights, counts
+
+
+def _as_float(column: pa.ChunkedArray) -> FloatArray:
+    if not pa.types.is_floating(column.type) or column.type != pa.float64():
+        column = pc.cast(column, pa.float64())
+    return np.asarray(column.to_numpy(), dtype=np.float64)
+
+
+def _check_weights(plan: DesignPlan, weights: FloatArray, first_row: int) -> None:
+    where = f"rows {first_row:,}-{first_row + weights.size - 1:,}"
+    if np.isnan(weights).any():
+        count = int(np.isnan(weights).sum())
+        raise DesignError(f"{plan.table}: weight column '{plan.weight}' has {count} missing "
+                          f"value{'s' if count > 1 else ''} in {where}; fill or drop them")
+    if not np.isfinite(weights).all():
+        raise DesignError(f"{plan.table}: weight column '{plan.weight}' has infinite values in "
+                          f"{where}; weights must be finite and non-negative")
+    if (weights < 0).any():
+        count = int((weights < 0).sum())
+        raise DesignError(f"{plan.table}: weight column '{plan.weight}' has {count} negative "
+                          f"value{'s' if count > 1 else ''} in {where}; weights must be >= 0")
+
+
+def finish_design(plan: DesignPlan, gram: CentredGram, counts: RowCounts) -> Design:
+    """Choose reference levels from what the used rows contain; name the design columns."""
+    features: list[str] = []
+    selection: list[int] = []
+    groups: list[Group] = []
+    notes: list[str] = []
+    position = 0
+    for part in plan.parts:
+        if isinstance(part, str):
+            features.append(part)
+            selection.append(position)
+            position += 1
+            continue
+        present = [k for k in range(len(part.levels)) if gram.mean[position + k] > 0.0]
+        absent = [part.levels[k] for k in range(len(part.levels)) if k not in present]
+        if absent:
+            notes.append(f"column '{part.column}': level{'s' if len(absent) > 1 else ''} "
+                         f"{', '.join(repr(a) for a in absent[:5])} have no used rows and get "
+                         "no dummy")
+        if len(present) <= 1:
+            notes.append(f"column '{part.column}' has a single level among the used rows; it "
+                         "adds no feature")
+        else:
+            start = len(features)
+            kept = present[1:]
+            for k in kept:
+                features.append(f"{part.column}={part.levels[k]}")
+                selection.append(position + k)
+            groups.append(Group(part.column, part.levels[present[0]],
+                                tuple(part.levels[k] for k in kept),
+                                tuple(range(start, start + len(kept)))))
+        position += len(part.levels)
+    if not features:
+        raise DesignError(f"{plan.table}: no feature column is left after encoding; "
+                          "check columns.include/exclude")
+    return Design(tuple(features), tuple(groups), tuple(selection), plan.weight, counts,
+                  tuple(notes))
+
+
+def _preview(names: Iterable[str], limit: int = 8) -> str:
+    items = list(names)
+    shown = ", ".join(items[:limit])
+    return shown + (f", ... ({len(items)} in all)" if len(items) > limit else "")

@@ -1,0 +1,396 @@
+"""Multicollinearity diagnostics from the row statistics: arrays in, arrays out.
+
+Route (measured in DEVELOPERS.md; see ../shared/design/numerics.md):
+
+1. The main pass gives the centred Gram (``CentredGram``). Constants are found from it first:
+   a column whose centred norm is at most ``tol`` times its uncentred norm is constant.
+2. The correlation matrix of the other columns is factored by Cholesky, ``corr = Rt'Rt``.
+   The Gram squares the condition number, so it resolves singular-value ratios of the
+   standardised design down to about sqrt(p eps), not to ``tol``. While every ratio is at least
+   ``GRAM_RESOLUTION`` (certified cheaply by trace(corr^-1) = sum of VIFs, or by the
+   eigenvalues when that bound is inconclusive) the design has full rank and every diagnostic
+   comes from ``Rt``: one factorisation, p x p work only.
+3. Otherwise the Gram cannot tell an exact dependency from a near one, and an exact pass is
+   requested: the TSQR factor of the centred, scaled rows (``TriangularFactor``), whose
+   singular values are accurate to ``tol`` = max(n, p+1) eps (numpy's matrix_rank convention).
+
+From the factor: VIF_j = squared norm of row j of inv(Rt) (= [corr^-1]_jj); GVIF per group
+(Fox & Monette 1992, JASA 87:178-183) as det(corr_GG) det([corr^-1]_GG); Belsley, Kuh & Welsch
+(1980, ch. 3) condition indices and variance-decomposition proportions from the SVD of the
+scaled factor of [1, X]; exact dependencies from column-pivoted QR of Rt (Businger & Golub 1965).
+Features inside an exact dependency have infinite VIF; every other VIF is computed on the
+design with one column per dependency dropped, which spans the same space, so it is exact.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Literal
+
+import numpy as np
+import scipy.linalg as sla
+from numpy.typing import NDArray
+
+from gate.statistics import CentredGram, FloatArray, TriangularFactor
+
+EPS = float(np.finfo(np.float64).eps)
+#: Smallest singular-value ratio of the standardised design that the Gram route decides on its
+#: own (about 100 x sqrt(eps)); below it an exact TSQR pass decides rank. Echoed in the verdict.
+GRAM_RESOLUTION = 1e-5
+#: Terms of a dependency whose standardised coefficient is below this (relative to the largest)
+#: are rounding noise, not part of the relation.
+DEPENDENCY_TERM_CUTOFF = 1e-8
+#: Intercept position in the condition-index column lists.
+INTERCEPT = -1
+
+Scaling = Literal["unit_length", "standardized"]
+IntArray = NDArray[np.intp]
+BoolArray = NDArray[np.bool_]
+
+
+@dataclass(frozen=True)
+class Dependency:
+    """An exact relation ``sum(terms[j] * x_j) = constant`` with largest |coefficient| = 1."""
+
+    terms: dict[int, float]
+    constant: float
+    kind: Literal["constant", "duplicate", "linear"]
+    expressed: int  # the feature the relation was solved for (left-hand side when written)
+
+
+@dataclass(frozen=True)
+class GroupInflation:
+    """Generalised VIF of a group of columns (Fox & Monette 1992); NaN when undefined."""
+
+    columns: tuple[int, ...]
+    gvif: float
+    df: int
+
+    @property
+    def adjusted(self) -> float:
+        """GVIF^(1/(2 df)): comparable to sqrt(VIF), the standard-error inflation."""
+        return float(self.gvif ** (1.0 / (2 * self.df)))
+
+    @property
+    def vif_scale(self) -> float:
+        """GVIF^(1/df): comparable to a VIF limit."""
+        return float(self.gvif ** (1.0 / self.df))
+
+
+@dataclass(frozen=True)
+class ConditionDiagnostics:
+    """Belsley-Kuh-Welsch condition indices (ascending) and proportions[k, j]."""
+
+    scaling: Scaling
+    indices: FloatArray
+    proportions: FloatArray
+    columns: tuple[int, ...]  # design column of each proportions column; INTERCEPT = -1
+    reduced: bool  # computed with one column per exact dependency dropped
+
+
+@dataclass(frozen=True)
+class ExactPassPlan:
+    """What the main pass decided, and what an exact pass (if needed) must factor."""
+
+    constant: BoolArray
+    needs_exact_pass: bool
+    columns: IntArray  # non-constant design columns, in design order
+    centre: FloatArray
+    scale: FloatArray
+    tolerance: float
+    cholesky: FloatArray | None = field(default=None, repr=False)  # Rt when the Gram sufficed
+
+
+@dataclass(frozen=True)
+class Diagnostics:
+    """Every number the gate judges. Indices refer to design columns (features)."""
+
+    rows: int
+    weight_sum: float
+    means: FloatArray
+    scales: FloatArray  # centred (weighted) column norms
+    correlation: FloatArray  # NaN rows/columns for constant features
+    inverse_correlation: FloatArray  # over the kept columns; NaN elsewhere
+    vif: FloatArray  # inf inside an exact dependency
+    groups: tuple[GroupInflation, ...]
+    condition: ConditionDiagnostics
+    condition_number: float | None  # None when rank deficient
+    rank: int  # of [1, X]
+    dependencies: tuple[Dependency, ...]
+    in_dependency: BoolArray
+    rank_tolerance: float
+    route: Literal["gram", "gram+tsqr"]
+
+    @property
+    def features(self) -> int:
+        return int(self.means.shape[0])
+
+    @property
+    def condition_number_reduced(self) -> float:
+        """Largest condition index of the design without its exactly dependent columns."""
+        return float(self.condition.indices[-1]) if self.condition.indices.size else 1.0
+
+    def pairs(self, limit: float) -> tuple[IntArray, IntArray, FloatArray]:
+        """Pairs (i < j) with |r| >= limit, sorted by |r| descending; no p^2 Python objects."""
+        with np.errstate(invalid="ignore"):
+            hits = np.abs(self.correlation) >= limit
+        hits = np.triu(hits, 1)
+        i, j = np.nonzero(hits)
+        r = self.correlation[i, j]
+        order = np.argsort(-np.abs(r), kind="stable")
+        return i[order], j[order], r[order]
+
+    def explained_by(self, feature: int, top: int = 3) -> list[tuple[int, float]]:
+        """Largest standardised auxiliary-regression coefficients b_jk = -P_jk / P_jj."""
+        row = self.inverse_correlation[feature]
+        if not np.isfinite(row[feature]):
+            return []
+        coef = -row / row[feature]
+        coef[feature] = np.nan
+        finite = np.flatnonzero(np.isfinite(coef))
+        best = finite[np.argsort(-np.abs(coef[finite]), kind="stable")[:top]]
+        return [(int(k), float(coef[k])) for k in best]
+
+
+def default_tolerance(rows: int, columns: int) -> float:
+    """max(n, p+1) * eps: the relative singular-value cut-off of numpy's matrix_rank."""
+    return max(rows, columns + 1) * EPS
+
+
+def plan_exact_pass(gram: CentredGram, *, tolerance: float | None = None) -> ExactPassPlan:
+    """Find constants and decide whether the Gram alone can settle the rank."""
+    p = gram.mean.shape[0]
+    tol = default_tolerance(gram.rows, p) if tolerance is None else tolerance
+    centred_sq = np.clip(np.diag(gram.comoment).copy(), 0.0, None)
+    uncentred = np.sqrt(centred_sq + gram.weight_sum * gram.mean**2)
+    scale = np.sqrt(centred_sq)
+    constant = (scale <= tol * uncentred) | (uncentred == 0.0)
+    columns = np.flatnonzero(~constant)
+    centre, col_scale = gram.mean[columns], scale[columns]
+    if columns.size == 0:
+        return ExactPassPlan(constant, False, columns, centre, col_scale, tol, np.zeros((0, 0)))
+    corr = _correlation_block(gram.comoment, columns, col_scale)
+    if tol >= GRAM_RESOLUTION:
+        # The Gram resolves ratios above GRAM_RESOLUTION; a coarser tolerance is decided here.
+        return ExactPassPlan(constant, False, columns, centre, col_scale, tol, None)
+    rt = _certified_cholesky(corr)
+    return ExactPassPlan(constant, rt is None, columns, centre, col_scale, tol, rt)
+
+
+def exact_pass_block(plan: ExactPassPlan, values: FloatArray,
+                     weights: FloatArray | None) -> FloatArray:
+    """Rows of the exact pass: centred by the global means, scaled, times sqrt(weight)."""
+    block = (values[:, plan.columns] - plan.centre) / plan.scale
+    if weights is not None:
+        block *= np.sqrt(weights)[:, None]
+    return block
+
+
+def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
+                        factor: TriangularFactor | None = None,
+                        groups: tuple[tuple[int, ...], ...] = (),
+                        scaling: Scaling = "unit_length") -> Diagnostics:
+    """All diagnostics from the main-pass statistics (and the exact factor when planned)."""
+    p = gram.mean.shape[0]
+    scales = np.sqrt(np.clip(np.diag(gram.comoment), 0.0, None))
+    nc = plan.columns
+    correlation = np.full((p, p), np.nan)
+    if nc.size:
+        correlation[np.ix_(nc, nc)] = _correlation_block(gram.comoment, nc, plan.scale)
+
+    rt, route, factor_scale = _standardised_factor(gram, plan, factor)
+    unit_scales = scales.copy()  # the scale that makes each column of rt unit length
+    unit_scales[nc] = factor_scale
+    kept_local, dependent_local, coefficients = _rank_and_dependencies(rt, plan, full_rank=(
+        plan.cholesky is not None))
+
+    dependencies: list[Dependency] = [
+        Dependency({int(j): 1.0}, float(gram.mean[j]), "constant", int(j))
+        for j in np.flatnonzero(plan.constant)
+    ]
+    in_dependency = plan.constant.copy()
+    for d_local, coef in zip(dependent_local, coefficients):
+        dep = _dependency_in_units(int(nc[d_local]), nc[kept_local], coef, gram.mean,
+                                   unit_scales)
+        dependencies.append(dep)
+        in_dependency[list(dep.terms)] = True
+
+    kept = nc[kept_local]
+    r_kept = rt if plan.cholesky is not None else _refactor_columns(rt, kept_local)
+    r_inverse = _triangular_inverse(r_kept)
+    vif = np.full(p, np.inf)
+    vif[kept] = np.einsum("ij,ij->i", r_inverse, r_inverse)
+    vif[in_dependency] = np.inf
+    inverse_correlation = np.full((p, p), np.nan)
+    inverse_correlation[np.ix_(kept, kept)] = r_inverse @ r_inverse.T
+
+    group_results = tuple(
+        _group_inflation(g, in_dependency, correlation, inverse_correlation) for g in groups
+    )
+    condition = _belsley(gram, kept, r_kept, unit_scales, scaling,
+                         reduced=len(dependencies) > 0)
+    rank = 1 + kept.size
+    return Diagnostics(
+        rows=gram.rows, weight_sum=gram.weight_sum, means=gram.mean.copy(), scales=scales,
+        correlation=correlation, inverse_correlation=inverse_correlation, vif=vif,
+        groups=group_results, condition=condition,
+        condition_number=None if dependencies else float(condition.indices[-1]),
+        rank=rank, dependencies=tuple(dependencies), in_dependency=in_dependency,
+        rank_tolerance=plan.tolerance, route=route,
+    )
+
+
+# --- factors -------------------------------------------------------------------------------
+
+def _correlation_block(comoment: FloatArray, columns: IntArray, scale: FloatArray) -> FloatArray:
+    block = comoment[np.ix_(columns, columns)] / np.outer(scale, scale)
+    np.fill_diagonal(block, 1.0)
+    return block
+
+
+def _certified_cholesky(corr: FloatArray) -> FloatArray | None:
+    """Upper Cholesky factor of corr if its singular values are certainly resolved, else None.
+
+    lambda_min >= 1 / trace(corr^-1) = 1 / sum(VIF), so a small VIF sum certifies the
+    smallest eigenvalue without an eigen-decomposition; otherwise the eigenvalues decide.
+    """
+    try:
+        rt = sla.cholesky(corr, lower=False, check_finite=False)
+    except np.linalg.LinAlgError:
+        return None
+    inverse, info = sla.lapack.dtrtri(rt, lower=0)
+    if info == 0 and np.all(np.isfinite(inverse)):
+        vif_sum = float(np.einsum("ij,ij->", inverse, inverse))
+        if vif_sum * GRAM_RESOLUTION**2 < 1.0:
+            return rt
+    eigenvalues = np.linalg.eigvalsh(corr)
+    if eigenvalues[0] >= (GRAM_RESOLUTION**2) * eigenvalues[-1]:
+        return rt
+    return None
+
+
+def _standardised_factor(
+    gram: CentredGram, plan: ExactPassPlan, factor: TriangularFactor | None
+) -> tuple[FloatArray, Literal["gram", "gram+tsqr"], FloatArray]:
+    """Rt with unit columns, Rt'Rt = correlation of the non-constant columns, and the scales
+    s_j for which column j of Rt is the factor of (x_j - m_j) / s_j."""
+    if plan.cholesky is not None:
+        return plan.cholesky, "gram", plan.scale
+    if plan.needs_exact_pass:
+        if factor is None:
+            raise ValueError("the Gram cannot settle the rank here: run the exact pass "
+                             "(TriangularFactor over exact_pass_block rows) and pass factor=")
+        r = factor.square()
+        norms = np.linalg.norm(r, axis=0)
+        norms[norms == 0.0] = 1.0
+        return r / norms, "gram+tsqr", plan.scale * norms
+    # Coarse tolerance chosen by the policy: the Gram decides, through a pivoted Cholesky-free
+    # route (eigen-decomposition of corr gives a factor that pivoted QR can read).
+    corr = _correlation_block(gram.comoment, plan.columns, plan.scale)
+    eigenvalues, vectors = np.linalg.eigh(corr)
+    root = vectors * np.sqrt(np.clip(eigenvalues, 0.0, None))
+    return np.linalg.qr(root.T, mode="r"), "gram", plan.scale
+
+
+def _rank_and_dependencies(rt: FloatArray, plan: ExactPassPlan, *, full_rank: bool
+                           ) -> tuple[IntArray, IntArray, list[FloatArray]]:
+    """Kept columns, dependent columns and each one's coefficients on the kept ones."""
+    q = rt.shape[1]
+    if full_rank or q == 0:
+        return np.arange(q), np.arange(0), []
+    singular = sla.svd(rt, compute_uv=False, check_finite=False)
+    rank = int(np.count_nonzero(singular > plan.tolerance * singular[0])) if singular.size else 0
+    if rank == q:
+        return np.arange(q), np.arange(0), []
+    _, rp, pivot = sla.qr(rt, pivoting=True, mode="economic", check_finite=False)
+    lead = rp[:rank, :rank]
+    coefficients = [
+        sla.solve_triangular(lead, rp[:rank, rank + i], check_finite=False)
+        for i in range(q - rank)
+    ]
+    return np.sort(pivot[:rank]), pivot[rank:], [
+        _reorder(c, pivot[:rank]) for c in coefficients
+    ]
+
+
+def _reorder(coef: FloatArray, lead_pivot: IntArray) -> FloatArray:
+    """Coefficients in pivot order -> coefficients over the kept columns in design order."""
+    return coef[np.argsort(lead_pivot, kind="stable")]
+
+
+def _dependency_in_units(dependent: int, kept: IntArray, coef: FloatArray,
+                         mean: FloatArray, scale: FloatArray) -> Dependency:
+    """z_d = sum c_k z_k (standardised) -> x_d - sum a_k x_k = m_d - sum a_k m_k."""
+    big = max(1.0, float(np.max(np.abs(coef)))) if coef.size else 1.0
+    involved = np.abs(coef) > DEPENDENCY_TERM_CUTOFF * big
+    slopes = coef[involved] * scale[dependent] / scale[kept[involved]]
+    cols = kept[involved]
+    constant = float(mean[dependent] - slopes @ mean[cols])
+    terms = {dependent: 1.0, **{int(c): -float(a) for c, a in zip(cols, slopes)}}
+    norm = max(abs(v) for v in terms.values())
+    terms = {k: v / norm for k, v in terms.items()}
+    constant /= norm
+    values = list(terms.values())
+    tiny = 1e-12 * max(1.0, float(np.max(np.abs(mean[list(terms)]))))
+    kind: Literal["constant", "duplicate", "linear"] = (
+        "duplicate" if len(values) == 2 and abs(values[0] + values[1]) <= 1e-12
+        and abs(constant) <= tiny else "linear"
+    )
+    return Dependency(terms, constant, kind, dependent)
+
+
+def _refactor_columns(rt: FloatArray, columns: IntArray) -> FloatArray:
+    if columns.size == 0:
+        return np.zeros((0, 0))
+    r = np.linalg.qr(rt[:, columns], mode="r")
+    signs = np.where(np.diag(r) < 0, -1.0, 1.0)
+    return r * signs[:, None]
+
+
+def _triangular_inverse(r: FloatArray) -> FloatArray:
+    if r.size == 0:
+        return np.zeros((0, 0))
+    inverse, info = sla.lapack.dtrtri(r, lower=0)
+    if info != 0:
+        raise np.linalg.LinAlgError("singular triangular factor after rank reduction")
+    return np.asarray(inverse)
+
+
+def _group_inflation(columns: tuple[int, ...], in_dependency: BoolArray, correlation: FloatArray,
+                     inverse_correlation: FloatArray) -> GroupInflation:
+    idx = np.asarray(columns, dtype=np.intp)
+    if in_dependency[idx].any():
+        return GroupInflation(columns, float("nan"), len(columns))
+    block = np.ix_(idx, idx)
+    sign_c, log_c = np.linalg.slogdet(correlation[block])
+    sign_p, log_p = np.linalg.slogdet(inverse_correlation[block])
+    gvif = float(np.exp(log_c + log_p)) if sign_c > 0 and sign_p > 0 else float("nan")
+    return GroupInflation(columns, gvif, len(columns))
+
+
+def _belsley(gram: CentredGram, kept: IntArray, r_kept: FloatArray, scales: FloatArray,
+             scaling: Scaling, *, reduced: bool) -> ConditionDiagnostics:
+    """Condition indices and variance-decomposition proportions (Belsley, Kuh & Welsch 1980).
+
+    unit_length: the factor of [1, X] is [[sqrt(W), sqrt(W) m'], [0, R11]] with R11 the factor of
+    the centred X, so the intercept's ill-conditioning is represented without squaring anything.
+    """
+    if scaling == "standardized":
+        r = r_kept
+        columns = tuple(int(k) for k in kept)
+    else:
+        root_w = np.sqrt(gram.weight_sum)
+        k = kept.size
+        r = np.zeros((k + 1, k + 1))
+        r[0, 0] = root_w
+        r[0, 1:] = root_w * gram.mean[kept]
+        r[1:, 1:] = r_kept * scales[kept]
+        r = r / np.linalg.norm(r, axis=0)
+        columns = (INTERCEPT, *(int(c) for c in kept))
+    if r.size == 0:
+        return ConditionDiagnostics(scaling, np.ones(0), np.zeros((0, 0)), columns, reduced)
+    _, mu, vt = sla.svd(r, full_matrices=False, check_finite=False, lapack_driver="gesdd")
+    indices = mu[0] / mu
+    phi = (vt.T / mu) ** 2  # phi[j, k] = v_jk^2 / mu_k^2
+    proportions = (phi / phi.sum(axis=1, keepdims=True)).T  # [k, j]; each column sums to 1
+    return ConditionDiagnostics(scaling, indices, proportions, columns, reduced)

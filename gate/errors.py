@@ -1,0 +1,50 @@
+"""Exceptions raised by collinearity-gate.
+
+    GateError                 every error the CLI reports as "unusable input" (exit 2)
+    ├── PolicyError           the policy file is unreadable or invalid
+    ├── TableError            the table is unreadable, or a column cannot be used
+    ├── DesignError           the design matrix cannot be built (missing values, weights, ...)
+    └── OutputError           an artefact cannot be written (folder not writable, disk full)
+    GateFailed                raised by Verdict.raise_for_status(); carries the verdict
+
+PolicyError, TableError and DesignError are also ValueErrors, so callers that
+already catch ValueError keep working. Messages are one line: what, where, and the fix.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from gate.verdict import Verdict
+
+
+class GateError(Exception):
+    """Base class of every error caused by unusable input."""
+
+
+class PolicyError(GateError, ValueError):
+    """The policy file is missing, not YAML, or breaks the policy schema."""
+
+
+class TableError(GateError, ValueError):
+    """The table cannot be read, or a selected column cannot be used."""
+
+
+class DesignError(GateError, ValueError):
+    """The design matrix cannot be built from the table under the policy."""
+
+
+class OutputError(GateError, OSError):
+    """An artefact could not be written; nothing half-written is left behind."""
+
+
+class GateFailed(Exception):
+    """The gate judged the table as failing; ``verdict`` holds the details."""
+
+    def __init__(self, verdict: Verdict) -> None:
+        self.verdict = verdict
+        worst = [f for f in verdict.findings if f.level == "fail" and not f.waived]
+        detail = "; ".join(f.message for f in worst[:3])
+        more = f" (+{len(worst) - 3} more)" if len(worst) > 3 else ""
+        super().__init__(f"collinearity gate failed: {detail}{more}")

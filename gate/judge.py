@@ -1,0 +1,207 @@
+"""Judge diagnostics against the policy's limits and waivers.
+
+Each enabled limit yields findings; a waiver covers a finding of its rule when every feature of
+the finding is listed in the waiver. An expired waiver covers nothing and is itself a warning; a
+waiver that covers nothing is reported as stale (information only).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+from dataclasses import dataclass, replace
+from typing import Literal
+
+import numpy as np
+
+from gate.design import Design
+from gate.diagnostics import INTERCEPT, Dependency, Diagnostics
+from gate.policy import Policy, Waiver
+
+FindingLevel = Literal["fail", "warn", "info"]
+Status = Literal["pass", "warn", "fail"]
+INTERCEPT_NAME = "(intercept)"
+
+
+@dataclass(frozen=True)
+class Finding:
+    rule: str
+    level: FindingLevel
+    features: tuple[str, ...]
+    value: float | None  # None = infinite or not a number (see message)
+    limit: float | None
+    message: str
+    waived: bool = False
+    waiver: int | None = None  # index into policy.waivers
+
+
+@dataclass(frozen=True)
+class WaiverState:
+    index: int
+    waiver: Waiver
+    state: Literal["active", "expired", "stale"]
+    covered: int
+
+
+def judge(diagnostics: Diagnostics, design: Design, policy: Policy, today: dt.date
+          ) -> tuple[tuple[Finding, ...], tuple[WaiverState, ...]]:
+    names = design.features
+    limits = policy.limits
+    raw: list[Finding] = []
+    if limits.pairwise_correlation.level != "off":
+        raw += _pair_findings(diagnostics, names, policy)
+    if limits.vif.level != "off":
+        raw += _vif_findings(diagnostics, design, policy)
+    if limits.condition_number.level != "off":
+        raw += _condition_findings(diagnostics, names, policy)
+    if limits.rank_deficiency.level != "off":
+        raw += _rank_findings(diagnostics, names, policy)
+    return _apply_waivers(raw, policy, today)
+
+
+def status_of(findings: tuple[Finding, ...]) -> Status:
+    levels = {f.level for f in findings if not f.waived}
+    return "fail" if "fail" in levels else "warn" if "warn" in levels else "pass"
+
+
+def _pair_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) -> list[Finding]:
+    limit = policy.limits.pairwise_correlation
+    i, j, r = d.pairs(limit.max)
+    return [
+        Finding("pairwise_correlation", limit.level, (names[a], names[b]), float(v), limit.max,
+                f"{names[a]} and {names[b]} move together: r = {v:+.3f} (|r| >= {limit.max:g})")
+        for a, b, v in zip(i.tolist(), j.tolist(), r.tolist())
+    ]
+
+
+def _vif_findings(d: Diagnostics, design: Design, policy: Policy) -> list[Finding]:
+    limit = policy.limits.vif
+    names = design.features
+    grouped = {k for g in design.groups for k in g.indices}
+    out: list[Finding] = []
+    breaching = np.flatnonzero(~(d.vif <= limit.max))  # inf and NaN breach too
+    for k in sorted(breaching.tolist(), key=lambda k: -float(d.vif[k])):
+        if k in grouped:
+            continue  # dummies are judged as a group (GVIF), not one by one
+        vif = float(d.vif[k])
+        if math.isinf(vif):
+            message = f"{names[k]}: VIF is infinite (it is part of an exact dependency)"
+            out.append(Finding("vif", limit.level, (names[k],), None, limit.max, message))
+            continue
+        helpers = ", ".join(f"{names[c]} ({b:+.2f})" for c, b in d.explained_by(k))
+        message = (f"{names[k]}: VIF {vif:.3g} > {limit.max:g} (standard error x"
+                   f"{math.sqrt(vif):.2f}, auxiliary R^2 {1 - 1 / vif:.4f})"
+                   + (f"; explained mostly by {helpers}" if helpers else ""))
+        out.append(Finding("vif", limit.level, (names[k],), vif, limit.max, message))
+    for group, result in zip(design.groups, d.groups):
+        scaled = result.vif_scale
+        if math.isnan(result.gvif):
+            out.append(Finding("vif", limit.level, (group.column,), None, limit.max,
+                               f"{group.column}: GVIF undefined (a dummy is part of an exact "
+                               "dependency)"))
+        elif scaled > limit.max:
+            out.append(Finding("vif", limit.level, (group.column,), scaled, limit.max,
+                               f"{group.column} ({result.df} dummies): GVIF^(1/df) "
+                               f"{scaled:.3g} > {limit.max:g} (GVIF {result.gvif:.3g})"))
+    return out
+
+
+def _condition_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) -> list[Finding]:
+    limit = policy.limits.condition_number
+    cond = d.condition
+    out: list[Finding] = []
+    suffix = " after dropping one column per exact dependency" if cond.reduced else ""
+    for k in range(cond.indices.size - 1, -1, -1):
+        index = float(cond.indices[k])
+        if not index > limit.max:
+            break
+        involved = [(c, float(cond.proportions[k, pos])) for pos, c in enumerate(cond.columns)
+                    if cond.proportions[k, pos] >= limit.proportion]
+        involved.sort(key=lambda item: -item[1])
+        label = ", ".join(f"{_column_name(c, names)} ({p:.2f})" for c, p in involved)
+        features = tuple(names[c] for c, _ in involved if c != INTERCEPT)
+        message = (f"condition index {index:.3g} > {limit.max:g}{suffix}; variance proportions "
+                   f">= {limit.proportion:g}: {label or 'none (a diffuse near dependency)'}")
+        out.append(Finding("condition_number", limit.level, features, index, limit.max,
+                           message))
+    return out
+
+
+def _rank_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) -> list[Finding]:
+    limit = policy.limits.rank_deficiency
+    out: list[Finding] = []
+    columns = d.features + 1
+    if d.rows <= d.features:
+        out.append(Finding(
+            "rank_deficiency", limit.level, (), float(d.rows), float(columns),
+            f"only {d.rows} rows for {columns} design columns (features plus intercept): at "
+            f"least {columns - d.rows} exact dependencies are unavoidable; add rows or drop "
+            "features"))
+    for dep in d.dependencies:
+        out.append(Finding("rank_deficiency", limit.level,
+                           tuple(names[k] for k in dep.terms), None, None,
+                           describe_dependency(dep, names)))
+    return out
+
+
+def describe_dependency(dep: Dependency, names: tuple[str, ...]) -> str:
+    """Readable relation, solved for the feature the factorisation expressed."""
+    lhs = names[dep.expressed]
+    if dep.kind == "constant":
+        return f"{lhs} is constant ({dep.constant:.6g} in every used row)"
+    own = dep.terms[dep.expressed]
+    rhs = [(names[k], -c / own) for k, c in dep.terms.items() if k != dep.expressed]
+    constant = dep.constant / own
+    text = _linear_text(rhs, constant)
+    kind = "duplicate: " if dep.kind == "duplicate" else "exact dependency: "
+    return f"{kind}{lhs} = {text}"
+
+
+def _linear_text(terms: list[tuple[str, float]], constant: float) -> str:
+    parts: list[str] = []
+    for name, coef in terms:
+        sign = "-" if coef < 0 else "+"
+        magnitude = abs(coef)
+        body = name if math.isclose(magnitude, 1.0, rel_tol=1e-9) else f"{magnitude:.6g}*{name}"
+        parts.append(f"{sign} {body}")
+    if abs(constant) > 1e-9 * max(1.0, *(abs(c) for _, c in terms)):
+        parts.append(f"{'-' if constant < 0 else '+'} {abs(constant):.6g}")
+    text = " ".join(parts)
+    return text[2:] if text.startswith("+ ") else "-" + text[2:] if text else "0"
+
+
+def _column_name(column: int, names: tuple[str, ...]) -> str:
+    return INTERCEPT_NAME if column == INTERCEPT else names[column]
+
+
+def _apply_waivers(raw: list[Finding], policy: Policy, today: dt.date
+                   ) -> tuple[tuple[Finding, ...], tuple[WaiverState, ...]]:
+    findings = list(raw)
+    states: list[WaiverState] = []
+    extra: list[Finding] = []
+    for index, waiver in enumerate(policy.waivers):
+        listed = set(waiver.features)
+        expired = waiver.expires < today
+        covered = 0
+        for pos, finding in enumerate(findings):
+            if finding.rule != waiver.rule or finding.waived or finding.level == "info":
+                continue
+            if not set(finding.features) <= listed:
+                continue
+            covered += 1
+            if not expired:
+                findings[pos] = replace(finding, waived=True, waiver=index)
+        who = f"waiver {index + 1} ({waiver.rule}: {', '.join(waiver.features)}; owner " \
+              f"{waiver.owner})"
+        if expired:
+            extra.append(Finding("waiver", "warn", tuple(waiver.features), None, None,
+                                 f"{who} expired on {waiver.expires.isoformat()} and no longer "
+                                 "applies; renew it with a new date or remove it"))
+            states.append(WaiverState(index, waiver, "expired", covered))
+        elif covered == 0:
+            extra.append(Finding("waiver", "info", tuple(waiver.features), None, None,
+                                 f"{who} is stale: no finding matches it; remove it"))
+            states.append(WaiverState(index, waiver, "stale", 0))
+        else:
+            states.append(WaiverState(index, waiver, "active", covered))
+    return tuple(findings + extra), tuple(states)
