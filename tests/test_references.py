@@ -1,0 +1,437 @@
+"""The gate's numbers against outside references; each check names its source beside it.
+
+Figures measured here (max relative error) are recorded with ``record_accuracy`` and printed at
+the end of the pytest run, under "accuracy against outside references".
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+import mpmath
+import numpy as np
+import pandas as pd
+import pytest
+import scipy.linalg as sla
+import statsmodels.datasets.longley as longley_data
+from statsmodels.stats.outliers_influence import variance_inflation_factor
+from statsmodels.tools import add_constant
+
+import gate
+from gate.diagnostics import INTERCEPT
+from gate.policy import Policy
+from gate.verdict import Verdict
+
+
+Recorder = Callable[[str, float], None]
+SEED = 20261202
+
+#: NIST StRD, Longley data set, certified R-squared of the full model (y on x1..x6).
+#: Source: https://www.itl.nist.gov/div898/strd/lls/data/Longley.shtml
+NIST_LONGLEY_R2 = 0.995479004577296
+LONGLEY_REGRESSORS = ["GNPDEFL", "GNP", "UNEMP", "ARMED", "POP", "YEAR"]
+
+
+def policy(**overrides: Any) -> Policy:
+    return Policy.model_validate({"name": "reference", **overrides})
+
+
+def run_check(frame: pd.DataFrame, **policy_overrides: Any) -> Verdict:
+    return gate.check(frame, policy(**policy_overrides))
+
+
+@pytest.fixture(scope="module")
+def longley() -> pd.DataFrame:
+    """statsmodels' bundled copy of Longley (1967); matches NIST StRD's Longley data."""
+    return longley_data.load_pandas().data
+
+
+def relative_errors(actual: Any, expected: Any) -> np.ndarray:
+    a = np.asarray(actual, dtype=float)
+    e = np.asarray(expected, dtype=float)
+    return np.abs(a - e) / np.abs(e)
+
+
+def dummy_design(frame: pd.DataFrame, categorical: list[str]) -> pd.DataFrame:
+    """Reference encoding: first sorted level dropped, dummies named '<col>=<level>'."""
+    parts = []
+    for name in frame.columns:
+        if name in categorical:
+            levels = sorted(frame[name].unique())
+            for level in levels[1:]:
+                parts.append(pd.Series((frame[name] == level).astype(float),
+                                       name=f"{name}={level}"))
+        else:
+            parts.append(frame[name].astype(float))
+    return pd.concat(parts, axis=1)
+
+
+# --- (a) statsmodels -----------------------------------------------------------------------
+
+@pytest.mark.parametrize("columns", [LONGLEY_REGRESSORS, None], ids=["six", "seven"])
+def test_longley_vif_matches_statsmodels(longley: pd.DataFrame, columns: list[str] | None,
+                                         record_accuracy: Recorder) -> None:
+    # Source: statsmodels.stats.outliers_influence.variance_inflation_factor, which regresses
+    # each column on all others of the design passed in; the design includes the constant.
+    frame = longley[columns] if columns else longley
+    exog = add_constant(frame.to_numpy())
+    expected = [variance_inflation_factor(exog, i) for i in range(1, exog.shape[1])]
+    verdict = run_check(frame)
+    assert verdict.features == tuple(frame.columns)
+    errors = relative_errors(verdict.diagnostics.vif, expected)
+    record_accuracy("Longley VIF vs statsmodels variance_inflation_factor", float(errors.max()))
+    assert errors.max() < 1e-9
+
+
+# --- (b) NIST StRD -------------------------------------------------------------------------
+
+def test_longley_vif_of_totemp_matches_nist_certified_r2(longley: pd.DataFrame,
+                                                         record_accuracy: Recorder) -> None:
+    # Source: NIST StRD Longley, certified R^2 of TOTEMP on the six regressors. With all seven
+    # columns as features, TOTEMP's auxiliary regression is exactly that model, so
+    # VIF(TOTEMP) = 1 / (1 - R^2).
+    verdict = run_check(longley)
+    vif = verdict.vif()["TOTEMP"]
+    assert vif is not None
+    expected = 1.0 / (1.0 - NIST_LONGLEY_R2)
+    error = abs(vif - expected) / expected
+    record_accuracy("Longley VIF(TOTEMP) vs NIST StRD certified R^2", error)
+    # The certified R^2 has 15 significant digits; 1 - R^2 ~ 4.5e-3 loses about two of them.
+    assert error < 1e-10
+
+
+# --- (c) mpmath, 50 digits -------------------------------------------------------------------
+
+def _mp_longley_reference(x: np.ndarray) -> tuple[list[Any], Any]:
+    """VIFs (diagonal of the inverse correlation matrix) and the Belsley-Kuh-Welsch condition
+    number (unit-length columns of [1, X]), both computed in 50-digit arithmetic."""
+    n, p = x.shape
+    with mpmath.workdps(50):
+        cols = [[mpmath.mpf(float(v)) for v in x[:, j]] for j in range(p)]
+        means = [mpmath.fsum(c) / n for c in cols]
+        centred = [[v - m for v in c] for c, m in zip(cols, means)]
+        comoment = mpmath.matrix(p, p)
+        for i in range(p):
+            for j in range(i, p):
+                comoment[i, j] = comoment[j, i] = mpmath.fsum(
+                    a * b for a, b in zip(centred[i], centred[j]))
+        corr = mpmath.matrix(p, p)
+        for i in range(p):
+            for j in range(p):
+                corr[i, j] = comoment[i, j] / mpmath.sqrt(comoment[i, i] * comoment[j, j])
+        inverse = mpmath.inverse(corr)
+        vif = [inverse[i, i] for i in range(p)]
+        design = mpmath.matrix(n, p + 1)
+        for j, column in enumerate([[mpmath.mpf(1)] * n, *cols]):
+            norm = mpmath.sqrt(mpmath.fsum(v * v for v in column))
+            for i in range(n):
+                design[i, j] = column[i] / norm
+        singular = mpmath.svd_r(design, compute_uv=False)
+        values = [singular[k] for k in range(singular.rows)]
+        condition = max(values) / min(values)
+    return vif, condition
+
+
+@pytest.mark.parametrize("columns", [LONGLEY_REGRESSORS, None], ids=["six", "seven"])
+def test_longley_vif_and_condition_number_match_mpmath(longley: pd.DataFrame,
+                                                       columns: list[str] | None,
+                                                       record_accuracy: Recorder) -> None:
+    # Source: mpmath at 50 digits (inverse of the correlation matrix; SVD of the unit-length
+    # scaled [1, X]), the reference suggested by Belsley, Kuh & Welsch (1980, ch. 3).
+    frame = longley[columns] if columns else longley
+    vif_ref, condition_ref = _mp_longley_reference(frame.to_numpy())
+    verdict = run_check(frame)
+    with mpmath.workdps(50):
+        vif_errors = [abs((mpmath.mpf(float(a)) - b) / b)
+                      for a, b in zip(verdict.diagnostics.vif, vif_ref)]
+        condition = verdict.diagnostics.condition_number
+        assert condition is not None
+        condition_error = abs((mpmath.mpf(condition) - condition_ref) / condition_ref)
+    record_accuracy("Longley VIFs vs mpmath 50-digit", float(max(vif_errors)))
+    record_accuracy("Longley BKW condition number vs mpmath 50-digit", float(condition_error))
+    assert float(max(vif_errors)) < 1e-9
+    assert float(condition_error) < 1e-9
+
+
+# --- (d) numpy rank, scipy null space -------------------------------------------------------
+
+def _generic_dependency_frame() -> pd.DataFrame:
+    # Invented, seeded: lamp_hours = 0.3 * panel_kw - 2.1 * shade_pct + 4 exactly (to rounding).
+    rng = np.random.default_rng(SEED + 5)
+    rows = 120
+    panel = rng.normal(50, 10, rows)
+    shade = rng.uniform(0, 30, rows)
+    return pd.DataFrame({
+        "panel_kw": panel,
+        "shade_pct": shade,
+        "battery_age": rng.normal(3, 1, rows),
+        "lamp_hours": 0.3 * panel - 2.1 * shade + 4.0,
+        "cloud_cover": rng.uniform(0, 1, rows),
+    })
+
+
+def _few_rows_frame() -> pd.DataFrame:
+    # Invented: 5 rows, 8 features: n <= p, so [1, X] has rank at most 5.
+    rng = np.random.default_rng(SEED + 6)
+    return pd.DataFrame(rng.normal(size=(5, 8)), columns=[f"sensor_{k}" for k in range(8)])
+
+
+@pytest.mark.parametrize("name", ["docks", "generic", "few_rows"])
+def test_rank_and_dependencies_match_numpy_and_scipy(name: str, docks_frame: pd.DataFrame,
+                                                     record_accuracy: Recorder) -> None:
+    # Sources: numpy.linalg.matrix_rank (SVD, tolerance max(n, p+1) eps sigma_max) for the rank
+    # of [1, X]; scipy.linalg.null_space for the null space of the centred design.
+    frame, categorical = {
+        "docks": (docks_frame, ["weather_kind"]),
+        "generic": (_generic_dependency_frame(), []),
+        "few_rows": (_few_rows_frame(), []),
+    }[name]
+    verdict = run_check(frame, columns={"categorical": categorical})
+    design = dummy_design(frame, categorical)
+    assert list(design.columns) == list(verdict.features)
+    x = design.to_numpy()
+    with_intercept = np.column_stack([np.ones(len(x)), x])
+    d = verdict.diagnostics
+    assert d.rank == np.linalg.matrix_rank(with_intercept)
+    assert len(d.dependencies) == with_intercept.shape[1] - d.rank
+    assert d.condition_number is None
+
+    centred = x - x.mean(axis=0)
+    null = sla.null_space(centred)
+    assert null.shape[1] == len(d.dependencies)
+    worst = 0.0
+    for dep in d.dependencies:
+        a = np.zeros(x.shape[1])
+        for k, coef in dep.terms.items():
+            a[k] = coef
+        assert max(abs(c) for c in dep.terms.values()) == pytest.approx(1.0)
+        # The relation holds on the centred design and, with its constant, on the raw rows.
+        residual = np.linalg.norm(centred @ a) / (np.linalg.norm(centred) * np.linalg.norm(a))
+        raw = np.linalg.norm(x @ a - dep.constant) / (
+            np.linalg.norm(x) * np.linalg.norm(a) + abs(dep.constant) * np.sqrt(len(x)))
+        outside = np.linalg.norm(a - null @ (null.T @ a)) / np.linalg.norm(a)
+        worst = max(worst, residual, raw, outside)
+        assert residual < 1e-12
+        assert raw < 1e-12
+        assert outside < 1e-10  # within null_space's own accuracy
+    record_accuracy("exact dependencies: residual / distance to scipy null space", worst)
+
+
+def test_docks_relations_are_named_plainly(docks_frame: pd.DataFrame) -> None:
+    # Closed form of the invented table: a constant, a duplicate and a three-term sum.
+    verdict = run_check(docks_frame, columns={"categorical": ["weather_kind"]})
+    names = verdict.features
+    kinds = {}
+    for dep in verdict.diagnostics.dependencies:
+        kinds[frozenset(names[k] for k in dep.terms)] = dep.kind
+    assert kinds[frozenset({"region_code"})] == "constant"
+    assert sum(kind == "duplicate" for kind in kinds.values()) == 1
+    assert any(kind == "linear" and {"docks_free", "docks_in_use"} <= members
+               for members, kind in kinds.items())
+    vif = verdict.vif()
+    for feature in ("region_code", "docks_free", "docks_in_use", "docks_total", "capacity_copy"):
+        assert vif[feature] is None
+    for feature in ("air_temp_c", "felt_temp_c", "wind_kmh"):
+        assert vif[feature] is not None
+
+
+def test_generic_dependency_coefficients_are_recovered() -> None:
+    # Closed form: lamp_hours - 0.3 panel_kw + 2.1 shade_pct = 4, scaled so the largest |coef|
+    # is 1 (interface.md).
+    verdict = run_check(_generic_dependency_frame())
+    (dep,) = verdict.diagnostics.dependencies
+    names = verdict.features
+    terms = {names[k]: c for k, c in dep.terms.items()}
+    scale = 1.0 / 2.1
+    expected = {"lamp_hours": scale, "panel_kw": -0.3 * scale, "shade_pct": 2.1 * scale}
+    sign = np.sign(terms["shade_pct"])
+    assert set(terms) == set(expected)
+    for key, value in expected.items():
+        assert sign * terms[key] == pytest.approx(value, rel=1e-9)
+    assert sign * dep.constant == pytest.approx(4.0 * scale, rel=1e-9)
+
+
+def test_exact_vifs_beside_a_dependency_match_statsmodels_on_the_reduced_design() -> None:
+    # Source: statsmodels' VIF on the design with one column per dependency dropped; dropping a
+    # column of the dependency leaves the span of each other feature's co-features unchanged.
+    frame = _generic_dependency_frame()
+    verdict = run_check(frame)
+    reduced = frame.drop(columns=["lamp_hours"])
+    exog = add_constant(reduced.to_numpy())
+    kept = list(reduced.columns)
+    for name in ("battery_age", "cloud_cover"):
+        reference = variance_inflation_factor(exog, kept.index(name) + 1)
+        assert verdict.vif()[name] == pytest.approx(reference, rel=1e-9)
+    for name in ("panel_kw", "shade_pct", "lamp_hours"):
+        assert verdict.vif()[name] is None
+
+
+# --- (e) two features ----------------------------------------------------------------------
+
+def test_two_feature_vif_is_one_over_one_minus_r_squared(record_accuracy: Recorder) -> None:
+    # Common practice, no source: with two features, each one's auxiliary R^2 is r^2.
+    rng = np.random.default_rng(SEED + 7)
+    a = rng.normal(size=400)
+    frame = pd.DataFrame({"air_temp_c": a, "felt_temp_c": 0.9 * a + 0.3 * rng.normal(size=400)})
+    r = np.corrcoef(frame.to_numpy(), rowvar=False)[0, 1]
+    verdict = run_check(frame)
+    expected = 1.0 / (1.0 - r**2)
+    errors = relative_errors(verdict.diagnostics.vif, [expected, expected])
+    record_accuracy("two-feature VIF vs 1/(1-r^2)", float(errors.max()))
+    assert errors.max() < 1e-12
+    (pair_a, pair_b, pair_r), = [(p["a"], p["b"], p["r"])
+                                 for p in verdict.to_dict()["diagnostics"]["pairs"]]
+    assert (pair_a, pair_b) == ("air_temp_c", "felt_temp_c")
+    assert pair_r == pytest.approx(r, rel=1e-12)
+
+
+# --- (f) GVIF --------------------------------------------------------------------------------
+
+def _weather_frame(rows: int = 500) -> pd.DataFrame:
+    # Invented: air temperature and humidity depend on the weather kind, so the group inflates.
+    rng = np.random.default_rng(SEED + 8)
+    kind = rng.choice(["clear", "fog", "rain", "snow"], rows, p=[0.4, 0.2, 0.25, 0.15])
+    base = pd.Series(kind).map({"clear": 18.0, "fog": 9.0, "rain": 12.0, "snow": -2.0})
+    wet = pd.Series(kind).map({"clear": 40.0, "fog": 90.0, "rain": 85.0, "snow": 70.0})
+    return pd.DataFrame({
+        "air_temp_c": base.to_numpy() + rng.normal(0, 4, rows),
+        "humidity": wet.to_numpy() + rng.normal(0, 8, rows),
+        "weather_kind": kind,
+        "wind_kmh": rng.gamma(2.0, 6.0, rows),
+    })
+
+
+def _direct_gvif(design: pd.DataFrame, group: list[str]) -> float:
+    # Fox & Monette (1992), JASA 87:178-183, eq. (10): GVIF = det(R11) det(R22) / det(R).
+    corr = np.corrcoef(design.to_numpy(), rowvar=False)
+    inside = [list(design.columns).index(c) for c in group]
+    outside = [k for k in range(design.shape[1]) if k not in inside]
+    return float(np.linalg.det(corr[np.ix_(inside, inside)])
+                 * np.linalg.det(corr[np.ix_(outside, outside)]) / np.linalg.det(corr))
+
+
+def test_gvif_matches_direct_determinant_formula(record_accuracy: Recorder) -> None:
+    frame = _weather_frame()
+    verdict = run_check(frame, columns={"categorical": ["weather_kind"]})
+    design = dummy_design(frame, ["weather_kind"])
+    group = [c for c in design.columns if c.startswith("weather_kind=")]
+    expected = _direct_gvif(design, group)
+    (result,) = verdict.diagnostics.groups
+    assert result.df == 3
+    error = abs(result.gvif - expected) / expected
+    record_accuracy("GVIF vs det(R11) det(R22) / det(R)", error)
+    assert error < 1e-10
+    assert result.gvif > 1.5  # the invented dependence is real
+    gvif_json = verdict.to_dict()["diagnostics"]["gvif"]["weather_kind"]
+    assert gvif_json["df"] == 3
+    assert gvif_json["gvif_adjusted"] == pytest.approx(expected ** (1 / 6), rel=1e-10)
+
+
+def test_gvif_does_not_depend_on_the_reference_level() -> None:
+    # Fox & Monette (1992): GVIF is invariant to the coding of the group's columns.
+    frame = _weather_frame()
+    base = run_check(frame, columns={"categorical": ["weather_kind"]})
+    for new_first in ("fog", "rain", "snow"):
+        relabelled = frame.assign(weather_kind=frame["weather_kind"].replace(
+            {new_first: "0_" + new_first}))
+        other = run_check(relabelled, columns={"categorical": ["weather_kind"]})
+        assert other.design.groups[0].reference == "0_" + new_first
+        assert other.diagnostics.groups[0].gvif == pytest.approx(
+            base.diagnostics.groups[0].gvif, rel=1e-10)
+        # The numeric features' VIFs are invariant too (same span).
+        for name in ("air_temp_c", "humidity", "wind_kmh"):
+            assert other.vif()[name] == pytest.approx(base.vif()[name], rel=1e-10)
+
+
+def test_gvif_of_a_single_dummy_equals_its_vif() -> None:
+    # Fox & Monette (1992): with df = 1 the GVIF is the ordinary VIF; reference: statsmodels'
+    # variance_inflation_factor of the 0/1 column in the numeric design.
+    rng = np.random.default_rng(SEED + 9)
+    rows = 300
+    weekend = rng.random(rows) < 0.3
+    frame = pd.DataFrame({
+        "leisure_trips": 5.0 * weekend + rng.normal(0, 2, rows),
+        "day_kind": np.where(weekend, "weekend", "weekday"),
+        "wind_kmh": rng.gamma(2.0, 6.0, rows),
+    })
+    verdict = run_check(frame, columns={"categorical": ["day_kind"]})
+    (result,) = verdict.diagnostics.groups
+    assert result.df == 1
+    design = dummy_design(frame, ["day_kind"])
+    exog = add_constant(design.to_numpy())
+    position = list(design.columns).index("day_kind=weekend")
+    expected = variance_inflation_factor(exog, position + 1)
+    assert result.gvif == pytest.approx(expected, rel=1e-10)
+    assert verdict.vif()["day_kind=weekend"] == pytest.approx(expected, rel=1e-10)
+
+
+# --- (g) condition indices and variance-decomposition proportions ---------------------------
+
+def _bkw_reference(x: np.ndarray, *, intercept: bool) -> tuple[np.ndarray, np.ndarray]:
+    # Belsley, Kuh & Welsch (1980), ch. 3, from a direct numpy SVD: columns scaled to unit
+    # length; eta_k = mu_max / mu_k; phi_jk = v_jk^2 / mu_k^2; pi_kj = phi_jk / sum_k phi_jk.
+    if intercept:
+        a = np.column_stack([np.ones(len(x)), x])
+    else:
+        a = x - x.mean(axis=0)
+    a = a / np.linalg.norm(a, axis=0)
+    _, mu, vt = np.linalg.svd(a, full_matrices=False)
+    phi = (vt.T / mu) ** 2
+    proportions = (phi / phi.sum(axis=1, keepdims=True)).T
+    return mu[0] / mu, proportions
+
+
+@pytest.mark.parametrize("scaling", ["unit_length", "standardized"])
+@pytest.mark.parametrize("dataset", ["longley", "weather"])
+def test_condition_indices_and_proportions_match_numpy_svd(
+        dataset: str, scaling: str, longley: pd.DataFrame, record_accuracy: Recorder) -> None:
+    if dataset == "longley":
+        frame, categorical = longley[LONGLEY_REGRESSORS], []
+    else:
+        frame, categorical = _weather_frame(), ["weather_kind"]
+    verdict = run_check(frame, columns={"categorical": categorical},
+                        limits={"condition_number": {"scaling": scaling}})
+    x = dummy_design(frame, categorical).to_numpy()
+    indices, proportions = _bkw_reference(x, intercept=scaling == "unit_length")
+    cond = verdict.diagnostics.condition
+    assert cond.scaling == scaling
+    p = x.shape[1]
+    expected_columns = (INTERCEPT, *range(p)) if scaling == "unit_length" else tuple(range(p))
+    assert cond.columns == expected_columns
+    assert np.all(np.diff(cond.indices) >= 0) and cond.indices[0] == 1.0
+    errors = relative_errors(cond.indices, indices)
+    record_accuracy(f"condition indices ({scaling}) vs numpy SVD", float(errors.max()))
+    # numpy's SVD of a 16 x 7 matrix with condition 4e4 is itself accurate to about
+    # kappa * eps ~ 1e-11 in the smallest singular value.
+    assert errors.max() < 1e-9
+    np.testing.assert_allclose(cond.proportions, proportions, rtol=0, atol=1e-8)
+    np.testing.assert_allclose(cond.proportions.sum(axis=0), 1.0, rtol=0, atol=1e-12)
+    if scaling == "unit_length":
+        number = verdict.diagnostics.condition_number
+        assert number == pytest.approx(indices[-1], rel=1e-9)
+        assert verdict.to_dict()["diagnostics"]["condition_indices"] == pytest.approx(
+            list(indices), rel=1e-9)
+
+
+def test_weighted_statistics_match_statsmodels_weighted_correlation() -> None:
+    # Source: statsmodels.stats.weightstats.DescrStatsW (weighted correlation), and VIF as the
+    # diagonal of the inverse weighted correlation matrix.
+    from statsmodels.stats.weightstats import DescrStatsW
+
+    rng = np.random.default_rng(SEED + 10)
+    rows = 200
+    a = rng.normal(size=rows)
+    frame = pd.DataFrame({
+        "air_temp_c": a,
+        "felt_temp_c": a + 0.5 * rng.normal(size=rows),
+        "wind_kmh": rng.gamma(2.0, 6.0, rows),
+        "trips_weight": rng.uniform(0.1, 5.0, rows),
+    })
+    verdict = run_check(frame, columns={"weight": "trips_weight"})
+    x = frame.drop(columns="trips_weight").to_numpy()
+    stats = DescrStatsW(x, weights=frame["trips_weight"].to_numpy())
+    corr = stats.corrcoef
+    np.testing.assert_allclose(verdict.diagnostics.correlation, corr, rtol=1e-12, atol=1e-14)
+    np.testing.assert_allclose(verdict.diagnostics.vif, np.diag(np.linalg.inv(corr)),
+                               rtol=1e-11)
