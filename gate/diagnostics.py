@@ -251,8 +251,9 @@ def _correlation_block(comoment: FloatArray, columns: IntArray, scale: FloatArra
 def _certified_cholesky(corr: FloatArray) -> FloatArray | None:
     """Upper Cholesky factor of corr if its singular values are certainly resolved, else None.
 
-    lambda_min >= 1 / trace(corr^-1) = 1 / sum(VIF), so a small VIF sum certifies the
-    smallest eigenvalue without an eigen-decomposition; otherwise the eigenvalues decide.
+    lambda_min >= 1 / trace(corr^-1) = 1 / sum(VIF) and lambda_max <= trace(corr) = p, so a
+    small VIF sum certifies the singular-value ratio without an eigen-decomposition; otherwise
+    the eigenvalues decide.
     """
     try:
         rt = sla.cholesky(corr, lower=False, check_finite=False)
@@ -261,7 +262,7 @@ def _certified_cholesky(corr: FloatArray) -> FloatArray | None:
     inverse, info = sla.lapack.dtrtri(rt, lower=0)
     if info == 0 and np.all(np.isfinite(inverse)):
         vif_sum = float(np.einsum("ij,ij->", inverse, inverse))
-        if vif_sum * GRAM_RESOLUTION**2 < 1.0:
+        if vif_sum * corr.shape[0] * GRAM_RESOLUTION**2 < 1.0:
             return rt
     eigenvalues = np.linalg.eigvalsh(corr)
     if eigenvalues[0] >= (GRAM_RESOLUTION**2) * eigenvalues[-1]:
