@@ -256,7 +256,7 @@ def _certified_cholesky(corr: FloatArray) -> FloatArray | None:
     the eigenvalues decide.
     """
     try:
-        rt = sla.cholesky(corr, lower=False, check_finite=False)
+        rt: FloatArray = np.asarray(sla.cholesky(corr, lower=False, check_finite=False))
     except np.linalg.LinAlgError:
         return None
     inverse, info = sla.lapack.dtrtri(rt, lower=0)
@@ -290,7 +290,7 @@ def _standardised_factor(
     corr = _correlation_block(gram.comoment, plan.columns, plan.scale)
     eigenvalues, vectors = np.linalg.eigh(corr)
     root = vectors * np.sqrt(np.clip(eigenvalues, 0.0, None))
-    return np.linalg.qr(root.T, mode="r"), "gram", plan.scale
+    return np.asarray(np.linalg.qr(root.T, mode="r")), "gram", plan.scale
 
 
 def _rank_and_dependencies(rt: FloatArray, plan: ExactPassPlan, *, full_rank: bool
@@ -343,7 +343,7 @@ def _dependency_in_units(dependent: int, kept: IntArray, coef: FloatArray,
 def _refactor_columns(rt: FloatArray, columns: IntArray) -> FloatArray:
     if columns.size == 0:
         return np.zeros((0, 0))
-    r = np.linalg.qr(rt[:, columns], mode="r")
+    r = np.asarray(np.linalg.qr(rt[:, columns], mode="r"))
     signs = np.where(np.diag(r) < 0, -1.0, 1.0)
     return r * signs[:, None]
 

@@ -59,6 +59,11 @@ def judge(diagnostics: Diagnostics, design: Design, policy: Policy, today: dt.da
     return _apply_waivers(raw, policy, today)
 
 
+def _finding_level(level: str) -> FindingLevel:
+    """Only enabled limits produce findings, so their level is fail or warn."""
+    return "fail" if level == "fail" else "warn"
+
+
 def status_of(findings: tuple[Finding, ...]) -> Status:
     levels = {f.level for f in findings if not f.waived}
     return "fail" if "fail" in levels else "warn" if "warn" in levels else "pass"
@@ -68,7 +73,7 @@ def _pair_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) -> li
     limit = policy.limits.pairwise_correlation
     i, j, r = d.pairs(limit.max)
     return [
-        Finding("pairwise_correlation", limit.level, (names[a], names[b]), float(v), limit.max,
+        Finding("pairwise_correlation", _finding_level(limit.level), (names[a], names[b]), float(v), limit.max,
                 f"{names[a]} and {names[b]} move together: r = {v:+.3f} (|r| >= {limit.max:g})")
         for a, b, v in zip(i.tolist(), j.tolist(), r.tolist())
     ]
@@ -86,21 +91,21 @@ def _vif_findings(d: Diagnostics, design: Design, policy: Policy) -> list[Findin
         vif = float(d.vif[k])
         if math.isinf(vif):
             message = f"{names[k]}: VIF is infinite (it is part of an exact dependency)"
-            out.append(Finding("vif", limit.level, (names[k],), None, limit.max, message))
+            out.append(Finding("vif", _finding_level(limit.level), (names[k],), None, limit.max, message))
             continue
         helpers = ", ".join(f"{names[c]} ({b:+.2f})" for c, b in d.explained_by(k))
         message = (f"{names[k]}: VIF {vif:.3g} > {limit.max:g} (standard error x"
                    f"{math.sqrt(vif):.2f}, auxiliary R^2 {1 - 1 / vif:.4f})"
                    + (f"; explained mostly by {helpers}" if helpers else ""))
-        out.append(Finding("vif", limit.level, (names[k],), vif, limit.max, message))
+        out.append(Finding("vif", _finding_level(limit.level), (names[k],), vif, limit.max, message))
     for group, result in zip(design.groups, d.groups):
         scaled = result.vif_scale
         if math.isnan(result.gvif):
-            out.append(Finding("vif", limit.level, (group.column,), None, limit.max,
+            out.append(Finding("vif", _finding_level(limit.level), (group.column,), None, limit.max,
                                f"{group.column}: GVIF undefined (a dummy is part of an exact "
                                "dependency)"))
         elif scaled > limit.max:
-            out.append(Finding("vif", limit.level, (group.column,), scaled, limit.max,
+            out.append(Finding("vif", _finding_level(limit.level), (group.column,), scaled, limit.max,
                                f"{group.column} ({result.df} dummies): GVIF^(1/df) "
                                f"{scaled:.3g} > {limit.max:g} (GVIF {result.gvif:.3g})"))
     return out
@@ -122,7 +127,7 @@ def _condition_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) 
         features = tuple(names[c] for c, _ in involved if c != INTERCEPT)
         message = (f"condition index {index:.3g} > {limit.max:g}{suffix}; variance proportions "
                    f">= {limit.proportion:g}: {label or 'none (a diffuse near dependency)'}")
-        out.append(Finding("condition_number", limit.level, features, index, limit.max,
+        out.append(Finding("condition_number", _finding_level(limit.level), features, index, limit.max,
                            message))
     return out
 
@@ -133,12 +138,12 @@ def _rank_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) -> li
     columns = d.features + 1
     if d.rows <= d.features:
         out.append(Finding(
-            "rank_deficiency", limit.level, (), float(d.rows), float(columns),
+            "rank_deficiency", _finding_level(limit.level), (), float(d.rows), float(columns),
             f"only {d.rows} rows for {columns} design columns (features plus intercept): at "
             f"least {columns - d.rows} exact dependencies are unavoidable; add rows or drop "
             "features"))
     for dep in d.dependencies:
-        out.append(Finding("rank_deficiency", limit.level,
+        out.append(Finding("rank_deficiency", _finding_level(limit.level),
                            tuple(names[k] for k in dep.terms), None, None,
                            describe_dependency(dep, names)))
     return out

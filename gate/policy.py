@@ -247,4 +247,4 @@ def _line_of(text: str, loc: tuple[Any, ...]) -> int | None:
 
 
 def today_utc() -> dt.date:
-    return dt.datetime.now(dt.timezone.utc).date()
+    return dt.datetime.now(dt.UTC).date()

@@ -92,14 +92,14 @@ class TriangularFactor:
     def from_block(cls, block: FloatArray) -> TriangularFactor:
         if block.shape[0] == 0:
             return cls.empty(block.shape[1])
-        return cls(np.linalg.qr(block, mode="r"))
+        return cls(np.asarray(np.linalg.qr(block, mode="r")))
 
     def merge(self, other: TriangularFactor) -> TriangularFactor:
         if other.r.shape[0] == 0:
             return self
         if self.r.shape[0] == 0:
             return other
-        return TriangularFactor(np.linalg.qr(np.vstack([self.r, other.r]), mode="r"))
+        return TriangularFactor(np.asarray(np.linalg.qr(np.vstack([self.r, other.r]), mode="r")))
 
     def square(self) -> FloatArray:
         """The p x p factor with a non-negative diagonal (zero rows added when n < p)."""
