@@ -63,7 +63,7 @@ def build_verdict(diagnostics: Diagnostics, design: Design, policy: Policy, *,
         table=TableInfo(source_name, sha256, counts.read, counts.used, counts.dropped,
                         dict(counts.missing)),
         policy=policy, design=design, diagnostics=diagnostics, label=label,
-        created_at=dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+        created_at=dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
         tool_version=tool_version(),
     )
 
