@@ -93,6 +93,20 @@ class Waiver(_Strict):
         return value
 
 
+class Segments(_Strict):
+    """Run the whole gate per segment (e.g. per region or month) as well as on the whole table.
+
+    The ``by`` columns are excluded from the features automatically. Segments with fewer than
+    ``min_rows`` used rows are reported but not judged (too few rows to estimate p x p
+    correlations; 30 is common practice, no source).
+    """
+
+    by: list[str] = Field(min_length=1, description="Columns whose value combinations form "
+                          "the segments.")
+    min_rows: int = Field(default=30, ge=2, description="Segments with fewer used rows are "
+                          "reported, not judged.")
+
+
 class Policy(_Strict):
     """A validated policy. Build it with :func:`load_policy` or ``Policy.model_validate``."""
 
@@ -103,6 +117,7 @@ class Policy(_Strict):
     missing: Literal["drop_rows", "fail"] = "drop_rows"
     limits: Limits = Field(default_factory=Limits)
     waivers: list[Waiver] = Field(default_factory=list)
+    segments: Segments | None = None
 
     _source: str | None = PrivateAttr(default=None)
     _sha256: str | None = PrivateAttr(default=None)
