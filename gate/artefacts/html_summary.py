@@ -1,0 +1,646 @@
+"""summary.html: one self-contained page for people, built from great-tables fragments.
+
+The page is our own small HTML document (title, a Content-Security-Policy that forbids every
+request, page CSS) holding one ``<section>`` per table. Each table is a great-tables fragment
+with a fixed id, so the same verdict gives the same bytes. Nothing is recomputed: every number
+comes from the Verdict (its Diagnostics arrays, Design and Policy).
+
+Safety: every user string (column names, levels, labels, waiver text, file names) reaches the
+page either as a plain great-tables cell, label or note (great-tables escapes those) or through
+``html.escape`` in this module. No ``fmt(...)`` callable, ``html()`` or ``md()`` is used, because
+great-tables trusts their output as markup. The CSP meta tag is a second line of defence.
+
+Size: rows are capped (breaches first) so a 2,000-feature table stays a few MB; verdict.json
+keeps every number.
+"""
+
+from __future__ import annotations
+
+import html
+import math
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from gate.artefacts.files import write_atomic
+from gate.diagnostics import INTERCEPT
+from gate.judge import INTERCEPT_NAME, Finding, describe_dependency
+
+if TYPE_CHECKING:
+    from great_tables import GT
+
+    from gate.verdict import Verdict
+
+#: Rows shown per table before the rest is summarised in a note (verdict.json has them all).
+MAX_FEATURE_ROWS = 250
+MAX_PAIR_ROWS = 200
+MAX_FINDING_ROWS = 300
+MAX_DEPENDENCY_ROWS = 200
+MAX_MISSING_ROWS = 200
+#: The colour-scaled correlation matrix is drawn only up to this many features.
+MAX_MATRIX_FEATURES = 40
+#: Condition-index table: largest indices shown, and proportion columns shown.
+MAX_CONDITION_ROWS = 20
+MAX_CONDITION_COLUMNS = 24
+
+CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:"
+
+# Our palette: ink on warm paper; status colours always paired with a word and a symbol.
+_STATUS_STYLE: dict[str, tuple[str, str, str, str]] = {
+    # status: (symbol, word, text colour, background)
+    "pass": ("\u2714", "PASS", "#14532d", "#dcf0e2"),
+    "warn": ("\u25b2", "WARN", "#6b4200", "#fbecc8"),
+    "fail": ("\u2716", "FAIL", "#8c1627", "#f9dde1"),
+}
+_LEVEL_MARK = {"fail": "\u2716 fail", "warn": "\u25b2 warn", "info": "\u2139 info"}
+_WAIVED_MARK = "\u25cb waived"
+_OK_MARK = "\u2714 ok"
+_FILL = {"fail": "#f9dde1", "warn": "#fbecc8", "waived": "#e6e9f0", "pass": "#dcf0e2"}
+_TEXT = {"fail": "#8c1627", "warn": "#6b4200", "waived": "#3b4660", "pass": "#14532d"}
+_MATRIX_PALETTE = ["#2d5d8f", "#9dbbd6", "#f7f6f2", "#e0a98f", "#a8432b"]
+_PROPORTION_MARK = " \u25c6"
+
+CAUTION = (
+    "This summary flags statistical risk in a feature table: features that carry little "
+    "information of their own, so that a linear model fitted on them has unstable "
+    "coefficients and inflated standard errors. It does not say whether a model is fair, "
+    "lawful or fit for its purpose. Where models feed decisions about people (credit, "
+    "insurance, hiring and the like), your team's model-risk policy and licensed or "
+    "regulated practice decide; use this page as one input to that review."
+)
+
+
+@dataclass(frozen=True)
+class _Section:
+    anchor: str
+    title: str
+    body: str  # already-safe HTML
+
+
+def write_summary_html(verdict: Verdict, path: str | Path) -> Path:
+    """Write summary.html for ``verdict`` atomically; return its path."""
+    return write_atomic(path, summary_html(verdict))
+
+
+def summary_html(verdict: Verdict) -> str:
+    """The whole page as a string (deterministic for a given verdict)."""
+    sections = [
+        _Section("verdict", "Verdict", _verdict_section(verdict)),
+        _Section("findings", "Findings", _findings_section(verdict)),
+        _Section("features", "Per feature", _features_section(verdict)),
+        _Section("pairs", "Correlated pairs", _pairs_section(verdict)),
+        _Section("matrix", "Correlation matrix", _matrix_section(verdict)),
+        _Section("condition", "Condition indices", _condition_section(verdict)),
+        _Section("dependencies", "Exact dependencies", _dependencies_section(verdict)),
+        _Section("missing", "Missing values", _missing_section(verdict)),
+        _Section("caution", "How to read this", f"<p class=\"caution\">{html.escape(CAUTION)}"
+                 "</p>"),
+    ]
+    return _page(verdict, sections)
+
+
+# --- page ----------------------------------------------------------------------------------
+
+_PAGE_CSS = """
+:root { color-scheme: light; }
+body { margin: 0; background: #f4f2ec; color: #1d2330;
+  font-family: system-ui, -apple-system, "Segoe UI", Roboto, "Liberation Sans", Arial, sans-serif;
+  font-size: 15px; line-height: 1.45; }
+.page-head { padding: 20px 28px 14px; background: #1d2330; color: #f4f2ec; }
+.page-head h1 { margin: 0 0 4px; font-size: 22px; font-weight: 600; }
+.page-head .sub { margin: 0; color: #c9cdd6; font-size: 13px; overflow-wrap: anywhere; }
+.status-pill { display: inline-block; margin-top: 10px; padding: 6px 14px; border-radius: 4px;
+  font-weight: 700; font-size: 18px; letter-spacing: 0.04em; border: 2px solid currentColor; }
+.status-pill .why { font-weight: 400; font-size: 14px; letter-spacing: 0; margin-left: 10px; }
+nav.toc { padding: 8px 28px; background: #e4e1d8; font-size: 13px; }
+nav.toc a { color: #24406b; margin-right: 14px; text-decoration: none; }
+nav.toc a:hover { text-decoration: underline; }
+main { padding: 8px 28px 32px; max-width: 1400px; }
+section.block { background: #ffffff; margin: 18px 0; padding: 12px 18px 16px;
+  border-left: 5px solid #5b6b8c; border-radius: 3px; box-shadow: 0 1px 2px rgba(0,0,0,0.08); }
+section.block > h2 { margin: 4px 0 8px; font-size: 17px; color: #24406b; }
+section.block > p, section.block li { max-width: 95ch; }
+p.note { color: #4a5263; font-size: 13px; margin: 6px 0; }
+p.caution { border: 1px dashed #8a7a52; background: #fbf8ee; padding: 10px 12px; }
+ul.design-notes { margin: 6px 0; padding-left: 20px; font-size: 13px; }
+code { font-family: ui-monospace, "DejaVu Sans Mono", "Liberation Mono", monospace;
+  font-size: 12px; overflow-wrap: anywhere; }
+#findings td:first-child, #findings td.gt_right, #features td.gt_right, #pairs td,
+#condition td, #waivers td:first-child { white-space: nowrap; }
+footer { padding: 0 28px 24px; color: #6a7080; font-size: 12px; }
+"""
+
+
+def _page(verdict: Verdict, sections: Sequence[_Section]) -> str:
+    symbol, word, colour, background = _STATUS_STYLE[verdict.status]
+    source = html.escape(verdict.table.source)
+    label = f" \u00b7 label {html.escape(verdict.label)}" if verdict.label else ""
+    toc = "".join(f'<a href="#sec-{s.anchor}">{html.escape(s.title)}</a>' for s in sections)
+    body = "\n".join(
+        f'<section class="block" id="sec-{s.anchor}" aria-labelledby="sec-{s.anchor}-h">'
+        f'<h2 id="sec-{s.anchor}-h">{html.escape(s.title)}</h2>\n{s.body}\n</section>'
+        for s in sections
+    )
+    return (
+        "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
+        f'<meta http-equiv="Content-Security-Policy" content="{CSP}">\n'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
+        f"<title>{word} \u00b7 collinearity gate \u00b7 {source}</title>\n"
+        f"<style>{_PAGE_CSS}</style>\n</head>\n<body>\n"
+        '<header class="page-head">\n'
+        "<h1>Collinearity gate summary</h1>\n"
+        f'<p class="sub">{source} \u00b7 policy {html.escape(verdict.policy.name)}{label} '
+        f"\u00b7 {html.escape(verdict.created_at)}</p>\n"
+        f'<div class="status-pill" id="status" role="status" '
+        f'style="color:{colour};background:{background}">'
+        f'<span aria-hidden="true">{symbol}</span> {word}'
+        f'<span class="why"> \u2014 {html.escape(_status_reason(verdict))}</span></div>\n'
+        f'</header>\n<nav class="toc" aria-label="Sections">{toc}</nav>\n'
+        f"<main>\n{body}\n</main>\n"
+        f"<footer>collinearity-gate {html.escape(verdict.tool_version)} \u00b7 generated from "
+        "the same verdict as verdict.json, which holds every number.</footer>\n"
+        "</body>\n</html>\n"
+    )
+
+
+def _status_reason(verdict: Verdict) -> str:
+    active = [f for f in verdict.findings if not f.waived]
+    fails = sum(1 for f in active if f.level == "fail")
+    warns = sum(1 for f in active if f.level == "warn")
+    waived = sum(1 for f in verdict.findings if f.waived)
+    return f"{fails} failing, {warns} warning, {waived} waived finding{'s' if waived != 1 else ''}"
+
+
+# --- great-tables helpers --------------------------------------------------------------------
+
+def _table(rows: list[dict[str, Any]], columns: dict[str, str], table_id: str, *,
+           stub: str | None = None, right: Iterable[str] = ()) -> GT:
+    """A GT over string cells (escaped by great-tables) with our house style."""
+    import pandas as pd
+    from great_tables import GT
+
+    frame = pd.DataFrame(rows, columns=list(columns), dtype=object)
+    table = GT(frame, rowname_col=stub, id=table_id)
+    table = table.cols_label(cases={k: v for k, v in columns.items() if k != stub})
+    right = [c for c in right if c in columns]
+    if right:
+        table = table.cols_align("right", columns=right)
+    return _style(table)
+
+
+def _style(table: GT) -> GT:
+    return table.tab_options(
+        table_font_size="13px", table_font_color="#1d2330",
+        table_font_names=["system-ui", "-apple-system", "Segoe UI", "Liberation Sans", "Arial",
+                          "sans-serif"],
+        column_labels_background_color="#e4e8f0", column_labels_font_weight="bold",
+        data_row_padding="4px", table_margin_left="0px", table_border_top_color="#5b6b8c",
+        table_body_hlines_color="#e8e6df", source_notes_font_size="12px",
+        row_striping_background_color="#f8f7f3", row_striping_include_table_body=True,
+    )
+
+
+def _fragment(table: GT) -> str:
+    return str(table.as_raw_html())
+
+
+def _mark_rows(table: GT, rows: list[int], kind: str, columns: str | list[str]) -> GT:
+    from great_tables import loc, style
+
+    if not rows:
+        return table
+    return table.tab_style(
+        style=[style.fill(color=_FILL[kind]), style.text(color=_TEXT[kind], weight="bold")],
+        locations=loc.body(columns=columns, rows=rows))
+
+
+def _note(text: str) -> str:
+    return f'<p class="note">{html.escape(text)}</p>'
+
+
+def _hidden_note(shown: int, total: int, what: str) -> str:
+    if total <= shown:
+        return ""
+    return _note(f"Showing {shown:,} of {total:,} {what}; {total - shown:,} more are hidden "
+                 "here. verdict.json lists all of them.")
+
+
+# --- number text (formatted here, so cells are plain, escaped text) ----------------------
+
+def _num(value: float | None, digits: int = 3) -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "\u2014"
+    if math.isinf(value):
+        return "\u221e" if value > 0 else "\u2212\u221e"
+    magnitude = abs(value)
+    if magnitude != 0 and (magnitude >= 1e5 or magnitude < 1e-3):
+        return f"{value:.{digits}g}"
+    return f"{value:,.{digits}f}"
+
+
+def _signed(value: float, digits: int = 3) -> str:
+    return f"{value:+.{digits}f}".replace("-", "\u2212")
+
+
+def _finding_mark(finding: Finding | None, level_if_breach: str | None) -> tuple[str, str]:
+    """(cell text, style kind) for a row judged by ``finding`` (None = no finding)."""
+    if finding is not None and finding.waived:
+        return _WAIVED_MARK, "waived"
+    if finding is not None:
+        return _LEVEL_MARK.get(finding.level, finding.level), finding.level
+    if level_if_breach:
+        return _LEVEL_MARK[level_if_breach], level_if_breach
+    return _OK_MARK, ""
+
+
+# --- sections --------------------------------------------------------------------------------
+
+def _verdict_section(verdict: Verdict) -> str:
+    t = verdict.table
+    p = verdict.policy
+    d = verdict.diagnostics
+    limits = p.limits
+    symbol, word, _, _ = _STATUS_STYLE[verdict.status]
+    rank_text = f"{d.rank} of {d.features + 1} design columns (features plus intercept)"
+    limit_text = " \u00b7 ".join([
+        f"|r| \u2265 {limits.pairwise_correlation.max:g} ({limits.pairwise_correlation.level})",
+        f"VIF > {limits.vif.max:g} ({limits.vif.level})",
+        f"condition index > {limits.condition_number.max:g} ({limits.condition_number.level}, "
+        f"{limits.condition_number.scaling.replace('_', '-')} scaling)",
+        f"rank deficiency ({limits.rank_deficiency.level})",
+    ])
+    items = [
+        ("Status", f"{symbol} {word} \u2014 {_status_reason(verdict)}"),
+        ("Table", t.source),
+        ("Table sha256", t.sha256 or "(not a file: no hash)"),
+        ("Policy", p.name + (f" ({p.source})" if p.source else "")),
+        ("Policy sha256", p.sha256),
+        ("Limits", limit_text),
+        ("Rows", f"{t.rows:,} read, {t.rows_used:,} used, {t.rows_dropped:,} dropped for "
+                 "missing values"),
+        ("Features", f"{len(verdict.features):,} design columns; rank {rank_text}"),
+        ("Weight column", verdict.design.weight or "none"),
+        ("Label", verdict.label or "none"),
+        ("Checked at (UTC)", verdict.created_at),
+        ("Tool version", f"collinearity-gate {verdict.tool_version}"),
+    ]
+    rows = [{"item": k, "value": v} for k, v in items]
+    table = _table(rows, {"item": "", "value": ""}, "verdict", stub="item")
+    table = _mark_rows(table, [0], verdict.status, "value")
+    out = _fragment(table)
+    if verdict.design.notes:
+        out += '<ul class="design-notes">' + "".join(
+            f"<li>{html.escape(n)}</li>" for n in verdict.design.notes) + "</ul>"
+    return out
+
+
+def _findings_section(verdict: Verdict) -> str:
+    order = {"fail": 0, "warn": 1, "info": 3}
+    findings = sorted(verdict.findings,
+                      key=lambda f: (2 if f.waived else order.get(f.level, 4), f.rule))
+    waivers = verdict.policy.waivers
+    parts: list[str] = []
+    if not findings:
+        parts.append("<p>No findings: every enabled limit holds.</p>")
+    else:
+        shown = findings[:MAX_FINDING_ROWS]
+        rows: list[dict[str, Any]] = []
+        marks: dict[str, list[int]] = {"fail": [], "warn": [], "waived": []}
+        for pos, f in enumerate(shown):
+            text, kind = _finding_mark(f, None)
+            if kind in marks:
+                marks[kind].append(pos)
+            waiver = waivers[f.waiver] if f.waiver is not None else None
+            rows.append({
+                "level": text,
+                "rule": f.rule,
+                "features": ", ".join(f.features) or "(whole design)",
+                "value": _finding_value(f),
+                "limit": _finding_limit(f),
+                "message": f.message,
+                "waiver": (f"{waiver.owner}: {waiver.reason} (until {waiver.expires.isoformat()})"
+                           if waiver is not None else ""),
+            })
+        table = _table(rows, {"level": "Result", "rule": "Rule", "features": "Features",
+                              "value": "Value", "limit": "Limit", "message": "Detail",
+                              "waiver": "Waiver (owner: reason, expiry)"},
+                       "findings", right=["value", "limit"])
+        for kind, positions in marks.items():
+            table = _mark_rows(table, positions, kind, "level")
+        parts.append(_fragment(table))
+        parts.append(_hidden_note(len(shown), len(findings), "findings"))
+    if verdict.waivers:
+        state_text = {"active": "\u25cb active", "expired": "\u25b2 expired",
+                      "stale": "\u2139 stale (matches no finding)"}
+        rows = [{
+            "state": state_text[w.state],
+            "rule": w.waiver.rule,
+            "features": ", ".join(w.waiver.features),
+            "owner": w.waiver.owner,
+            "reason": w.waiver.reason,
+            "expires": w.waiver.expires.isoformat(),
+            "covered": str(w.covered),
+        } for w in verdict.waivers]
+        table = _table(rows, {"state": "State", "rule": "Rule", "features": "Features",
+                              "owner": "Owner", "reason": "Reason", "expires": "Expires",
+                              "covered": "Findings matched"}, "waivers", right=["covered"])
+        table = _mark_rows(table, [i for i, w in enumerate(verdict.waivers)
+                                   if w.state == "expired"], "warn", "state")
+        parts.append("<h3>Waivers in the policy</h3>" + _fragment(table))
+    return "\n".join(p for p in parts if p)
+
+
+def _finding_value(f: Finding) -> str:
+    if f.value is not None:
+        return _signed(f.value) if f.rule == "pairwise_correlation" else _num(f.value)
+    if f.rule in ("vif", "condition_number"):
+        return "\u221e" if "infinite" in f.message else "undefined"
+    if f.rule == "rank_deficiency":
+        return "exact"
+    return "\u2014"
+
+
+def _finding_limit(f: Finding) -> str:
+    if f.limit is None:
+        return "\u2014"
+    prefix = {"pairwise_correlation": "|r| \u2265 ", "vif": "> ", "condition_number": "> "}
+    return prefix.get(f.rule, "") + f"{f.limit:g}"
+
+
+def _findings_by_features(verdict: Verdict, rule: str) -> dict[tuple[str, ...], Finding]:
+    return {f.features: f for f in verdict.findings if f.rule == rule}
+
+
+def _features_section(verdict: Verdict) -> str:
+    d = verdict.diagnostics
+    names = verdict.features
+    limit = verdict.policy.limits.vif
+    judged = _findings_by_features(verdict, "vif")
+    grouped = {k for g in verdict.design.groups for k in g.indices}
+    # (breach, sort value, row builder args)
+    candidates: list[tuple[bool, float, int]] = []
+    for k in range(len(names)):
+        if k in grouped:
+            continue
+        vif = float(d.vif[k])
+        candidates.append((not vif <= limit.max, vif if not math.isnan(vif) else math.inf, k))
+    for g_pos, result in enumerate(d.groups):
+        scaled = result.vif_scale
+        candidates.append((not scaled <= limit.max,
+                           scaled if not math.isnan(scaled) else math.inf, -1 - g_pos))
+    candidates.sort(key=lambda c: (not c[0], -c[1]))
+    shown = candidates[:MAX_FEATURE_ROWS]
+    rows: list[dict[str, Any]] = []
+    marks: dict[str, list[int]] = {"fail": [], "warn": [], "waived": []}
+    level_if_breach = limit.level if limit.level != "off" else None
+    for pos, (breach, _, k) in enumerate(shown):
+        if k >= 0:
+            name = names[k]
+            row = _feature_row(verdict, k)
+        else:
+            group = verdict.design.groups[-1 - k]
+            name = group.column
+            row = _group_row(verdict, -1 - k)
+        finding = judged.get((name,))
+        text, kind = _finding_mark(finding, level_if_breach if breach else None)
+        if level_if_breach is None and not breach:
+            text = _OK_MARK
+        elif level_if_breach is None:
+            text, kind = "limit off", ""
+        if kind in marks:
+            marks[kind].append(pos)
+        rows.append({"feature": name, **row, "result": text})
+    columns = {"feature": "Feature", "vif": "VIF", "tolerance": "Tolerance (1/VIF)",
+               "r2": "Auxiliary R\u00b2", "se": "SE inflation \u221aVIF",
+               "explained": "Explained mostly by (standardised coefficient)",
+               "result": "Result"}
+    table = _table(rows, columns, "features", stub="feature",
+                   right=["vif", "tolerance", "r2", "se"])
+    from great_tables import loc, style
+
+    table = table.tab_stubhead(label="Feature")
+    for kind, positions in marks.items():
+        table = _mark_rows(table, positions, kind, ["vif", "result"])
+    if shown:
+        table = table.tab_style(style=style.text(color="#4a5263", size="12px"),
+                                locations=loc.body(columns="explained"))
+    table = table.tab_source_note(
+        f"Breaches of the VIF limit ({'>'} {limit.max:g}, {limit.level}) come first, then the "
+        "rest by VIF. Categorical groups show GVIF^(1/df) in the VIF column and "
+        "GVIF^(1/(2 df)) as SE inflation (Fox & Monette 1992). \u221e: the feature is part of "
+        "an exact dependency.")
+    total_breaches = sum(1 for c in candidates if c[0])
+    hidden = _hidden_note(len(shown), len(candidates), "features and groups")
+    if hidden and total_breaches > len(shown):
+        hidden += _note(f"{total_breaches:,} of them breach the limit.")
+    return _fragment(table) + hidden
+
+
+def _feature_row(verdict: Verdict, k: int) -> dict[str, str]:
+    d = verdict.diagnostics
+    names = verdict.features
+    vif = float(d.vif[k])
+    if math.isinf(vif) or math.isnan(vif):
+        why = ("constant column" if any(dep.kind == "constant" and k in dep.terms
+                                        for dep in d.dependencies)
+               else "part of an exact dependency (see below)")
+        return {"vif": "\u221e", "tolerance": "0", "r2": "1", "se": "\u221e", "explained": why}
+    helpers = ", ".join(f"{names[c]} ({_signed(b, 2)})" for c, b in d.explained_by(k))
+    return {
+        "vif": _num(vif, 2),
+        "tolerance": _num(1.0 / vif, 4),
+        "r2": _num(1.0 - 1.0 / vif, 4) if vif < 1e4 else f"{1.0 - 1.0 / vif:.7f}",
+        "se": "\u00d7" + _num(math.sqrt(vif), 2),
+        "explained": helpers or "\u2014",
+    }
+
+
+def _group_row(verdict: Verdict, g: int) -> dict[str, str]:
+    group = verdict.design.groups[g]
+    result = verdict.diagnostics.groups[g]
+    levels = f"group of {result.df} dummies, reference level {group.reference}"
+    if math.isnan(result.gvif):
+        return {"vif": "undefined", "tolerance": "\u2014", "r2": "\u2014", "se": "\u2014",
+                "explained": f"{levels}; a dummy is part of an exact dependency"}
+    scaled = result.vif_scale
+    return {
+        "vif": _num(scaled, 2),
+        "tolerance": _num(1.0 / scaled, 4),
+        "r2": "\u2014",
+        "se": "\u00d7" + _num(result.adjusted, 2),
+        "explained": f"{levels}; GVIF {_num(result.gvif, 3)}",
+    }
+
+
+def _pairs_section(verdict: Verdict) -> str:
+    limit = verdict.policy.limits.pairwise_correlation
+    names = verdict.features
+    i, j, r = verdict.diagnostics.pairs(limit.max)
+    total = int(r.size)
+    if total == 0:
+        return f"<p>No pair of features has |r| \u2265 {limit.max:g}.</p>"
+    judged = _findings_by_features(verdict, "pairwise_correlation")
+    level_if_breach = limit.level if limit.level != "off" else None
+    rows: list[dict[str, Any]] = []
+    marks: dict[str, list[int]] = {"fail": [], "warn": [], "waived": []}
+    for pos, (a, b, v) in enumerate(zip(i[:MAX_PAIR_ROWS].tolist(), j[:MAX_PAIR_ROWS].tolist(),
+                                        r[:MAX_PAIR_ROWS].tolist())):
+        text, kind = _finding_mark(judged.get((names[a], names[b])), level_if_breach)
+        if level_if_breach is None:
+            text = "limit off"
+        if kind in marks:
+            marks[kind].append(pos)
+        rows.append({"a": names[a], "b": names[b], "r": _signed(v), "abs": f"{abs(v):.3f}",
+                     "result": text})
+    table = _table(rows, {"a": "Feature", "b": "Feature", "r": "Pearson r", "abs": "|r|",
+                          "result": "Result"}, "pairs", right=["r", "abs"])
+    for kind, positions in marks.items():
+        table = _mark_rows(table, positions, kind, ["abs", "result"])
+    table = table.tab_source_note(f"Every pair with |r| \u2265 {limit.max:g}, strongest first.")
+    return _fragment(table) + _hidden_note(len(rows), total, "pairs")
+
+
+def _matrix_section(verdict: Verdict) -> str:
+    names = verdict.features
+    p = len(names)
+    if p > MAX_MATRIX_FEATURES:
+        return _note(f"The matrix is drawn for at most {MAX_MATRIX_FEATURES} features; this "
+                     f"design has {p:,}. The pairs above and verdict.json hold the strong "
+                     "correlations.")
+    if p < 2:
+        return _note("Fewer than two features: no correlations.")
+    import pandas as pd
+    from great_tables import GT
+
+    corr = verdict.diagnostics.correlation
+    keys = [f"c{k}" for k in range(p)]
+    frame = pd.DataFrame(np.round(corr, 6), columns=keys)
+    frame.insert(0, "feature", list(names))
+    table = GT(frame, rowname_col="feature", id="matrix")
+    table = table.cols_label(cases=dict(zip(keys, names)))
+    table = table.fmt_number(columns=keys, decimals=2).sub_missing(columns=keys,
+                                                                   missing_text="\u2014")
+    table = table.data_color(columns=keys, palette=_MATRIX_PALETTE, domain=[-1, 1],
+                             na_color="#e7e5df", truncate=True)
+    table = _style(table).tab_options(table_font_size="11px", data_row_padding="2px")
+    table = table.tab_source_note(
+        "Pearson r between design columns: blue negative, red positive, the number printed in "
+        "every cell. \u2014: a constant column has no correlation.")
+    return _fragment(table)
+
+
+def _condition_section(verdict: Verdict) -> str:
+    d = verdict.diagnostics
+    cond = d.condition
+    limit = verdict.policy.limits.condition_number
+    names = verdict.features
+    count = int(cond.indices.size)
+    if count == 0:
+        return _note("No condition indices (no non-constant design columns).")
+    order = list(range(count - 1, -1, -1))  # largest first
+    shown_rows = order[:MAX_CONDITION_ROWS]
+    breaching = [k for k in shown_rows if cond.indices[k] > limit.max]
+    columns = list(range(len(cond.columns)))
+    if len(columns) > MAX_CONDITION_COLUMNS:
+        focus = breaching or shown_rows[:1]
+        peak = cond.proportions[np.ix_(focus, columns)].max(axis=0)
+        involved = [c for c in columns if peak[c] >= limit.proportion]
+        rest = sorted((c for c in columns if peak[c] < limit.proportion),
+                      key=lambda c: -peak[c])
+        chosen = (involved + rest)[:MAX_CONDITION_COLUMNS]
+        columns = sorted(chosen)
+    keys = [f"v{c}" for c in columns]
+    labels = {f"v{c}": (INTERCEPT_NAME if cond.columns[c] == INTERCEPT
+                        else names[cond.columns[c]]) for c in columns}
+    rows: list[dict[str, Any]] = []
+    marked: dict[str, list[int]] = {key: [] for key in keys}
+    level_rows: list[int] = []
+    for pos, k in enumerate(shown_rows):
+        breach = bool(cond.indices[k] > limit.max)
+        row: dict[str, Any] = {
+            "index": _num(float(cond.indices[k]), 1),
+            "result": (_LEVEL_MARK[limit.level] if breach and limit.level != "off"
+                       else ("over limit (off)" if breach else _OK_MARK)),
+        }
+        if breach and limit.level != "off":
+            level_rows.append(pos)
+        for c, key in zip(columns, keys):
+            value = float(cond.proportions[k, c])
+            hit = breach and value >= limit.proportion
+            row[key] = f"{value:.2f}" + (_PROPORTION_MARK if hit else "")
+            if hit:
+                marked[key].append(pos)
+        rows.append(row)
+    table = _table(rows, {"index": "Condition index", "result": "Result", **labels},
+                   "condition", right=["index", *keys])
+    table = table.tab_spanner(label="Variance-decomposition proportions", columns=keys)
+    level_kind = limit.level if limit.level in ("fail", "warn") else "waived"
+    table = _mark_rows(table, level_rows, level_kind, ["index", "result"])
+    for key, positions in marked.items():
+        table = _mark_rows(table, positions, level_kind, key)
+    scaling = "unit-length columns" if cond.scaling == "unit_length" else "standardised columns"
+    reduced = (" Computed after dropping one column per exact dependency (the full design is "
+               "singular, its condition number infinite)." if cond.reduced else "")
+    table = table.tab_source_note(
+        f"Belsley, Kuh & Welsch (1980): {scaling} with an intercept. \u25c6 marks proportions "
+        f"\u2265 {limit.proportion:g} on rows whose index exceeds {limit.max:g}: those columns "
+        f"share the near dependency.{reduced}")
+    number = d.condition_number
+    head = _note(f"Condition number: {_num(number, 1) if number is not None else 'infinite'}"
+                 f" (limit {limit.max:g}, {limit.level}).")
+    notes = _hidden_note(len(shown_rows), count, "condition indices (largest first)")
+    if len(columns) < len(cond.columns):
+        notes += _note(f"Showing {len(columns)} of {len(cond.columns)} proportion columns: "
+                       "those involved in the largest indices first. verdict.json lists the "
+                       "proportions of every breaching index.")
+    return head + _fragment(table) + notes
+
+
+def _dependencies_section(verdict: Verdict) -> str:
+    deps = verdict.diagnostics.dependencies
+    names = verdict.features
+    if not deps:
+        return "<p>None: the design has full rank (no constant, duplicate or exactly " \
+               "dependent columns).</p>"
+    kind_text = {"constant": "constant column", "duplicate": "duplicate", "linear": "linear"}
+    shown = deps[:MAX_DEPENDENCY_ROWS]
+    rows = [{"kind": kind_text.get(dep.kind, dep.kind),
+             "relation": describe_dependency(dep, names).split(": ", 1)[-1],
+             "features": str(len(dep.terms))} for dep in shown]
+    table = _table(rows, {"kind": "Kind", "relation": "Relation (holds in every used row)",
+                          "features": "Features"}, "dependencies", right=["features"])
+    table = table.tab_source_note(
+        f"Rank of the design: {verdict.diagnostics.rank} of "
+        f"{verdict.diagnostics.features + 1} columns (relative tolerance "
+        f"{verdict.diagnostics.rank_tolerance:.2g}). Coefficients are rounded for display.")
+    return _fragment(table) + _hidden_note(len(shown), len(deps), "dependencies")
+
+
+def _missing_section(verdict: Verdict) -> str:
+    design = verdict.design
+    t = verdict.table
+    grouped = {k for g in design.groups for k in g.indices}
+    columns = [n for k, n in enumerate(design.features) if k not in grouped]
+    columns += [g.column for g in design.groups]
+    if design.weight:
+        columns.append(design.weight)
+    columns += [c for c in t.missing if c not in columns]
+    counts = {c: int(t.missing.get(c, 0)) for c in columns}
+    ordered = sorted(columns, key=lambda c: -counts[c])
+    shown = ordered[:MAX_MISSING_ROWS]
+    rows = [{"column": c, "missing": f"{counts[c]:,}",
+             "share": f"{100.0 * counts[c] / t.rows:.1f} %" if t.rows else "\u2014"}
+            for c in shown]
+    table = _table(rows, {"column": "Column", "missing": "Missing values",
+                          "share": "Share of rows read"}, "missing",
+                   right=["missing", "share"])
+    with_missing = [pos for pos, c in enumerate(shown) if counts[c] > 0]
+    table = _mark_rows(table, with_missing, "waived", "missing")
+    policy = verdict.policy.missing
+    table = table.tab_source_note(
+        f"Missing-value policy: {policy}. {t.rows_dropped:,} of {t.rows:,} rows were dropped; "
+        "a row counts once even when several of its columns are missing.")
+    return _fragment(table) + _hidden_note(len(shown), len(ordered), "columns")

@@ -1,0 +1,154 @@
+"""JUnit XML (``--junit FILE``): the verdict as test results a CI system can display.
+
+Layout (the widely used JUnit XML conventions: ``testsuites > testsuite > testcase``):
+
+* one ``testcase`` per rule and subject: every finding is a test case named
+  ``rule[subject]`` (subject = the features involved, or ``design``); every enabled rule
+  without findings is one passing test case ``rule[all features]``; a rule turned off by the
+  policy is one skipped test case;
+* a fail finding carries ``<failure>``; a warning passes but says so in ``<system-out>``
+  (shown by most CI systems) and in a suite property ``warning.N``; a waived finding is
+  ``<skipped>`` with the waiver's owner, reason and expiry in its message;
+* ``tests``, ``failures``, ``errors`` (always 0: errors mean the gate could not judge, which
+  exits 2 without a report) and ``skipped`` count the test cases; ``testsuites`` repeats them.
+
+ElementTree escapes text and attributes; characters XML 1.0 cannot carry at all (control
+characters in a column name) are replaced by U+FFFD.
+"""
+
+from __future__ import annotations
+
+import re
+import xml.etree.ElementTree as ET
+from collections import Counter
+from pathlib import Path
+
+from gate.artefacts.files import write_atomic
+from gate.judge import Finding
+from gate.policy import RULES
+from gate.verdict import Verdict
+
+SUITE_NAME = "collinearity-gate"
+CLASS_PREFIX = "collinearity_gate"
+_XML_INVALID = re.compile("[^\u0009\u000a\u000d\u0020-\ud7ff\ue000-\ufffd\U00010000-\U0010ffff]")
+
+
+def junit_xml(verdict: Verdict) -> str:
+    """The JUnit XML document for ``verdict`` (UTF-8 text with an XML declaration)."""
+    cases: list[ET.Element] = []
+    names: Counter[str] = Counter()
+    warnings: list[str] = []
+    counts = Counter[str]()
+    with_findings = {f.rule for f in verdict.findings}
+    limits = verdict.policy.limits.model_dump()
+
+    for finding in verdict.findings:
+        case = _case(finding.rule, _subject(finding), names)
+        if finding.waived:
+            case.append(_element("skipped", message=_waiver_text(verdict, finding)))
+            counts["skipped"] += 1
+        elif finding.level == "fail":
+            failure = _element("failure", message=finding.message, type=f"{finding.rule}.fail")
+            failure.text = _clean(_details(finding))
+            case.append(failure)
+            counts["failures"] += 1
+        elif finding.level == "warn":
+            warnings.append(f"{finding.rule}[{_subject(finding)}]: {finding.message}")
+            out = ET.SubElement(case, "system-out")
+            out.text = _clean(f"WARNING (does not fail the gate): {finding.message}\n"
+                              + _details(finding))
+        else:
+            out = ET.SubElement(case, "system-out")
+            out.text = _clean(f"{finding.level.upper()}: {finding.message}")
+        cases.append(case)
+    for rule in RULES:
+        if rule in with_findings:
+            continue
+        level = limits[rule]["level"]
+        case = _case(rule, "all features", names)
+        if level == "off":
+            case.append(_element("skipped", message="limit turned off by the policy"))
+            counts["skipped"] += 1
+        cases.append(case)
+
+    tests = len(cases)
+    suite = _element(
+        "testsuite", name=SUITE_NAME, tests=str(tests), failures=str(counts["failures"]),
+        errors="0", skipped=str(counts["skipped"]), time="0", timestamp=_timestamp(verdict),
+        hostname="localhost", id="0", package=CLASS_PREFIX)
+    properties = ET.SubElement(suite, "properties")
+    for name, value in _properties(verdict, warnings):
+        properties.append(_element("property", name=name, value=value))
+    suite.extend(cases)
+    root = _element("testsuites", name=SUITE_NAME, tests=str(tests),
+                    failures=str(counts["failures"]), errors="0",
+                    skipped=str(counts["skipped"]), time="0")
+    root.append(suite)
+    ET.indent(root)
+    return ('<?xml version="1.0" encoding="UTF-8"?>\n'
+            + ET.tostring(root, encoding="unicode") + "\n")
+
+
+def write_junit(verdict: Verdict, path: str | Path) -> Path:
+    return write_atomic(path, junit_xml(verdict))
+
+
+def _case(rule: str, subject: str, names: Counter[str]) -> ET.Element:
+    name = f"{rule}[{subject}]"
+    names[name] += 1
+    if names[name] > 1:  # keep names unique so CI histories do not merge two cases
+        name = f"{name}#{names[name]}"
+    return _element("testcase", name=name, classname=f"{CLASS_PREFIX}.{rule}", time="0")
+
+
+def _subject(finding: Finding) -> str:
+    return ", ".join(finding.features) if finding.features else "design"
+
+
+def _details(finding: Finding) -> str:
+    lines = [f"rule: {finding.rule}", f"level: {finding.level}",
+             f"features: {', '.join(finding.features) or '(whole design)'}"]
+    if finding.value is not None:
+        lines.append(f"value: {finding.value:.6g}")
+    if finding.limit is not None:
+        lines.append(f"limit: {finding.limit:g}")
+    return "\n".join(lines)
+
+
+def _waiver_text(verdict: Verdict, finding: Finding) -> str:
+    if finding.waiver is None:
+        return f"waived: {finding.message}"
+    w = verdict.policy.waivers[finding.waiver]
+    return (f"waived by {w.owner} until {w.expires.isoformat()}: {w.reason} "
+            f"(finding: {finding.message})")
+
+
+def _properties(verdict: Verdict, warnings: list[str]) -> list[tuple[str, str]]:
+    t = verdict.table
+    out = [
+        ("status", verdict.status),
+        ("table", t.source),
+        ("table.sha256", t.sha256 or ""),
+        ("rows.used", str(t.rows_used)),
+        ("rows.dropped", str(t.rows_dropped)),
+        ("policy", verdict.policy.name),
+        ("policy.sha256", verdict.policy.sha256),
+        ("label", verdict.label or ""),
+        ("tool.version", verdict.tool_version),
+        ("warnings", str(len(warnings))),
+    ]
+    out += [(f"warning.{k + 1}", text) for k, text in enumerate(warnings)]
+    return out
+
+
+def _timestamp(verdict: Verdict) -> str:
+    """ISO 8601 without the zone suffix (the JUnit convention); the verdict time is UTC."""
+    return verdict.created_at.replace("+00:00", "").rstrip("Z")[:19]
+
+
+def _element(tag: str, **attributes: str) -> ET.Element:
+    return ET.Element(tag, {k: _clean(v) for k, v in attributes.items()})
+
+
+def _clean(text: str) -> str:
+    return _XML_INVALID.sub("\ufffd", text)

@@ -1,0 +1,66 @@
+"""`gate policy init [FILE]`: write a commented starter policy (never over an existing file)."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+from gate.errors import OutputError
+
+DEFAULT_FILE = "gate-policy.yaml"
+
+STARTER_POLICY = """\
+# collinearity-gate policy (written by `gate policy init`).
+# Check it with `gate policy validate FILE`; its JSON Schema: `gate policy schema`.
+policy_version: 1
+name: my-feature-table            # shown in every verdict and report
+description: Limits for the features of one model; say which model and who owns it.
+
+columns:
+  include: ["*"]                  # shell-style globs over column names
+  exclude: []                     # e.g. [row_id, observed_at, target]: ids, times, the target
+  categorical: []                 # one-hot encoded, first sorted level is the reference;
+                                  # string and category columns are categorical anyway
+  weight: null                    # optional column of non-negative row weights
+
+missing: drop_rows                # drop_rows: drop incomplete rows and count them | fail
+
+limits:                           # each limit: level fail | warn | off
+  # |r| >= 0.8 between two features: a common rule of thumb (common practice, no source).
+  pairwise_correlation: {max: 0.8, level: warn, method: pearson}
+  # VIF > 5: standard errors inflated by more than sqrt(5) = 2.24x (common practice, no
+  # source). Groups of dummies are judged on GVIF^(1/df) (Fox & Monette 1992).
+  vif: {max: 5.0, level: fail}
+  # Condition index > 30: a moderate-to-strong near dependency (Belsley, Kuh & Welsch 1980,
+  # unit-length columns with an intercept). proportion: the variance-decomposition share at
+  # which a feature counts as involved in a near dependency.
+  condition_number: {max: 30, level: warn, scaling: unit_length, proportion: 0.5}
+  # Exact linear dependencies (constants, duplicates, sums). tolerance: relative
+  # singular-value cut-off; null = max(rows, columns) * machine epsilon.
+  rank_deficiency: {level: fail, tolerance: null}
+
+# A waiver accepts the findings of one rule over the listed features until a date. An expired
+# waiver stops waiving and is itself a warning; one that matches nothing is reported as stale.
+waivers: []
+#  - rule: pairwise_correlation
+#    features: [feature_a, feature_b]
+#    reason: both kept on purpose; the model is fitted with a ridge penalty
+#    owner: the-team-that-decided
+#    expires: 2027-06-30
+"""
+
+
+def write_starter_policy(path: str | Path | None = None) -> Path:
+    """Create ``path`` (default gate-policy.yaml) with the starter policy; never overwrite."""
+    file = Path(path) if path is not None else Path(DEFAULT_FILE)
+    try:
+        fd = os.open(file, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o644)
+    except FileExistsError:
+        raise OutputError(f"{file}: already exists; `gate policy init` never overwrites a file. "
+                          "Choose another name or move the file away first") from None
+    except OSError as exc:
+        raise OutputError(f"{file}: cannot create the policy file ({exc.strerror or exc}); "
+                          "check that the folder exists and is writable") from None
+    with os.fdopen(fd, "w", encoding="utf-8") as handle:
+        handle.write(STARTER_POLICY)
+    return file

@@ -1,0 +1,157 @@
+"""JSON Schema for the policy file and for verdict.json, generated from pydantic models.
+
+The policy schema comes straight from :class:`gate.policy.Policy`. The verdict document is
+produced by ``Verdict.to_dict`` (gate/verdict.py); the models below describe that document so
+its schema is generated, not hand-written, and ``tests/test_schemas.py`` validates real verdicts
+against it. Objects that later versions may extend allow extra keys; closed records (findings,
+pairs, dependencies, waivers) do not, so a renamed field is caught.
+"""
+
+from __future__ import annotations
+
+import json
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field
+
+from gate.policy import Limits, Policy
+
+JSON_SCHEMA_DIALECT = "https://json-schema.org/draft/2020-12/schema"
+Number = float | None  # null stands for infinite or undefined (JSON has no inf/NaN)
+
+
+class _Open(BaseModel):
+    model_config = ConfigDict(extra="allow")
+
+
+class _Closed(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class ToolInfo(_Open):
+    name: Literal["collinearity-gate"]
+    version: str
+
+
+class TableSummary(_Open):
+    source: str = Field(description="Path of the table (or <DataFrame> from the Python API).")
+    sha256: str | None = Field(description="sha256 of the table file's bytes; null when the "
+                               "table was not a file.")
+    rows: int = Field(ge=0)
+    rows_used: int = Field(ge=0)
+    rows_dropped: int = Field(ge=0)
+    missing: dict[str, int] = Field(description="Missing values per column (columns with any).")
+    weight: str | None = Field(description="Weight column, if the policy names one.")
+
+
+class PolicySummary(_Open):
+    name: str
+    source: str | None
+    sha256: str
+    limits: Limits
+
+
+class GroupSummary(_Closed):
+    column: str
+    reference: str
+    features: list[str]
+
+
+class GroupInflation(_Closed):
+    gvif: Number
+    df: int = Field(ge=1)
+    gvif_adjusted: Number = Field(description="GVIF^(1/(2 df)).")
+
+
+class VarianceProportions(_Closed):
+    index: Number
+    proportions: dict[str, Number] = Field(
+        description="Variance-decomposition proportions >= 0.01 on this condition index.")
+
+
+class DependencyRecord(_Closed):
+    terms: dict[str, float] = Field(description="sum(coef * feature) = constant; largest "
+                                    "|coef| = 1.")
+    constant: float
+    kind: Literal["constant", "duplicate", "linear"]
+    relation: str
+
+
+class PairRecord(_Closed):
+    a: str
+    b: str
+    r: float = Field(ge=-1.0000001, le=1.0000001)
+
+
+class Diagnostics(_Open):
+    vif: dict[str, Number] = Field(description="VIF per feature; null = infinite.")
+    gvif: dict[str, GroupInflation]
+    condition_number: Number = Field(description="null when the design is rank deficient.")
+    condition_number_reduced: Number
+    condition_scaling: Literal["unit_length", "standardized"]
+    condition_indices: list[Number]
+    variance_proportions: list[VarianceProportions]
+    rank: int = Field(ge=0)
+    columns: int = Field(ge=1)
+    dependencies: list[DependencyRecord]
+    pairs: list[PairRecord]
+    rank_tolerance: float
+    gram_resolution: float
+    route: str
+
+
+class FindingRecord(_Closed):
+    rule: str
+    level: Literal["fail", "warn", "info"]
+    features: list[str]
+    value: Number
+    limit: Number
+    waived: bool
+    waiver: int | None = Field(description="Index into the policy's waivers.")
+    message: str
+
+
+class WaiverRecord(_Closed):
+    rule: str
+    features: list[str]
+    owner: str
+    reason: str
+    expires: str
+    state: Literal["active", "expired", "stale"]
+    covered: int = Field(ge=0)
+
+
+class VerdictDocument(_Open):
+    """verdict.json, as written by `gate check`."""
+
+    schema_version: Literal[1]
+    status: Literal["pass", "warn", "fail"]
+    label: str | None
+    created_at: str = Field(description="UTC time, ISO 8601.")
+    tool: ToolInfo
+    table: TableSummary
+    policy: PolicySummary
+    features: list[str]
+    groups: list[GroupSummary]
+    design_notes: list[str]
+    diagnostics: Diagnostics
+    findings: list[FindingRecord]
+    waivers: list[WaiverRecord]
+
+
+def policy_schema() -> dict[str, Any]:
+    """JSON Schema of the policy file."""
+    return _with_header(Policy.model_json_schema(), "collinearity-gate policy")
+
+
+def verdict_schema() -> dict[str, Any]:
+    """JSON Schema of verdict.json."""
+    return _with_header(VerdictDocument.model_json_schema(), "collinearity-gate verdict")
+
+
+def schema_text(schema: dict[str, Any]) -> str:
+    return json.dumps(schema, indent=2, sort_keys=False) + "\n"
+
+
+def _with_header(schema: dict[str, Any], title: str) -> dict[str, Any]:
+    return {"$schema": JSON_SCHEMA_DIALECT, **schema, "title": title}
