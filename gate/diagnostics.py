@@ -201,7 +201,7 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
     rt, route, factor_scale = _standardised_factor(gram, plan, factor)
     unit_scales = scales.copy()  # the scale that makes each column of rt unit length
     unit_scales[nc] = factor_scale
-    kept_local, dependent_local, coefficients = _rank_and_dependencies(rt, plan, full_rank=(
+    kept_local, relations = _rank_and_dependencies(rt, plan, full_rank=(
         plan.cholesky is not None))
 
     dependencies: list[Dependency] = [
@@ -209,8 +209,8 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
         for j in np.flatnonzero(plan.constant)
     ]
     in_dependency = plan.constant.copy()
-    for d_local, coef in zip(dependent_local, coefficients):
-        dep = _dependency_in_units(int(nc[d_local]), nc[kept_local], coef, gram.mean,
+    for d_local, basis_local, coef in relations:
+        dep = _dependency_in_units(int(nc[d_local]), nc[basis_local], coef, gram.mean,
                                    unit_scales)
         dependencies.append(dep)
         in_dependency[list(dep.terms)] = True
@@ -293,25 +293,106 @@ def _standardised_factor(
     return np.asarray(np.linalg.qr(root.T, mode="r")), "gram", plan.scale
 
 
+#: Relation of a dependent column: (its position, the columns it is written in, coefficients).
+Relation = tuple[int, IntArray, FloatArray]
+#: Pairs with |r| below this are not even candidates for being duplicates of each other.
+DUPLICATE_CANDIDATE_R = 1.0 - 1e-6
+
+
 def _rank_and_dependencies(rt: FloatArray, plan: ExactPassPlan, *, full_rank: bool
-                           ) -> tuple[IntArray, IntArray, list[FloatArray]]:
-    """Kept columns, dependent columns and each one's coefficients on the kept ones."""
+                           ) -> tuple[IntArray, list[Relation]]:
+    """Kept columns, and each dependent column's relation (standardised units).
+
+    The rank is the numpy matrix_rank count of singular values above ``tolerance * mu_max``.
+    Which columns count as dependent is then fixed by the column order, not by rounding, so the
+    same table gives the same relations whatever the chunking: a column that duplicates an
+    earlier one (up to sign and scale) is written as that duplicate; every other dependent column
+    is one that lies in the span of the kept columns before it (left-to-right), written over
+    them. Only if that canonical choice disagrees with the singular-value count (possible only
+    for near, not exact, dependencies) does column-pivoted QR (Businger & Golub 1965) choose.
+    """
     q = rt.shape[1]
     if full_rank or q == 0:
-        return np.arange(q), np.arange(0), []
+        return np.arange(q), []
     singular = sla.svd(rt, compute_uv=False, check_finite=False)
-    rank = int(np.count_nonzero(singular > plan.tolerance * singular[0])) if singular.size else 0
+    threshold = plan.tolerance * float(singular[0])
+    rank = int(np.count_nonzero(singular > threshold))
     if rank == q:
-        return np.arange(q), np.arange(0), []
+        return np.arange(q), []
+    duplicates = _duplicates(rt, threshold)
+    found = _left_to_right(rt, threshold, skip={d for d, _, _ in duplicates},
+                           expected=q - rank - len(duplicates))
+    if found is None:
+        return _pivoted_dependencies(rt, rank)
+    kept, relations = found
+    return kept, sorted(duplicates + relations, key=lambda rel: rel[0])
+
+
+def _duplicates(rt: FloatArray, threshold: float) -> list[Relation]:
+    """Columns equal to an earlier column up to sign (unit columns: z_j = +-z_i).
+
+    The pair's smaller singular value is ||z_j -+ z_i|| / sqrt(2); it is measured on the factor
+    columns directly (not as 1 - |r|, which would lose half the digits).
+    """
+    gram = rt.T @ rt
+    candidates = np.argwhere(np.triu(np.abs(gram) >= DUPLICATE_CANDIDATE_R, 1))
+    found: dict[int, Relation] = {}
+    for i, j in sorted((int(a), int(b)) for a, b in candidates):
+        if j in found or i in found:
+            continue  # i is itself a duplicate: its own original, earlier, is checked too
+        sign = 1.0 if gram[i, j] > 0 else -1.0
+        if np.linalg.norm(rt[:, j] - sign * rt[:, i]) / np.sqrt(2.0) <= threshold:
+            found[j] = (j, np.array([i], dtype=np.intp), np.array([sign]))
+    return list(found.values())
+
+
+def _left_to_right(rt: FloatArray, threshold: float, *, skip: set[int], expected: int
+                   ) -> tuple[IntArray, list[Relation]] | None:
+    """Greedy left-to-right basis: a column is dependent when its distance from the span of the
+    kept columns before it (the diagonal of their QR factor) is at most ``threshold``.
+
+    A dependent column is deleted from the factorisation before the next one is judged
+    (``scipy.linalg.qr_delete``, Givens rotations, O(q^2) each), so rounding noise in its
+    residual never leaks into later decisions. None when the count differs from ``expected``.
+    """
+    columns = [k for k in range(rt.shape[1]) if k not in skip]
+    q_factor, r_factor = sla.qr(rt[:, columns], check_finite=False)
+    kept: list[int] = []
+    dependent: list[int] = []
+    kept_before: list[int] = []  # for each dependent column: how many kept columns precede it
+    for column in columns:
+        position = len(kept)
+        if position < r_factor.shape[0] and abs(r_factor[position, position]) > threshold:
+            kept.append(column)
+            continue
+        dependent.append(column)
+        kept_before.append(position)
+        q_factor, r_factor = sla.qr_delete(q_factor, r_factor, position, 1, which="col",
+                                           check_finite=False)
+    if len(dependent) != expected:
+        return None
+    k = len(kept)
+    lead = r_factor[:k, :k]
+    coordinates = q_factor[:, :k].T @ rt[:, dependent]
+    relations: list[Relation] = []
+    for pos, (column, before) in enumerate(zip(dependent, kept_before)):
+        coef = sla.solve_triangular(lead[:before, :before], coordinates[:before, pos],
+                                    check_finite=False)
+        relations.append((column, np.asarray(kept[:before], dtype=np.intp), np.asarray(coef)))
+    return np.asarray(kept, dtype=np.intp), relations
+
+
+def _pivoted_dependencies(rt: FloatArray, rank: int) -> tuple[IntArray, list[Relation]]:
+    q = rt.shape[1]
     _, rp, pivot = sla.qr(rt, pivoting=True, mode="economic", check_finite=False)
     lead = rp[:rank, :rank]
-    coefficients = [
-        sla.solve_triangular(lead, rp[:rank, rank + i], check_finite=False)
+    kept = np.sort(pivot[:rank])
+    relations: list[Relation] = [
+        (int(pivot[rank + i]), kept, _reorder(
+            sla.solve_triangular(lead, rp[:rank, rank + i], check_finite=False), pivot[:rank]))
         for i in range(q - rank)
     ]
-    return np.sort(pivot[:rank]), pivot[rank:], [
-        _reorder(c, pivot[:rank]) for c in coefficients
-    ]
+    return kept, relations
 
 
 def _reorder(coef: FloatArray, lead_pivot: IntArray) -> FloatArray:
@@ -376,18 +457,7 @@ def _belsley(gram: CentredGram, kept: IntArray, r_kept: FloatArray, scales: Floa
     unit_length: the factor of [1, X] is [[sqrt(W), sqrt(W) m'], [0, R11]] with R11 the factor of
     the centred X, so the intercept's ill-conditioning is represented without squaring anything.
     """
-    if scaling == "standardized":
-        r = r_kept
-        columns = tuple(int(k) for k in kept)
-    else:
-        root_w = np.sqrt(gram.weight_sum)
-        k = kept.size
-        r = np.zeros((k + 1, k + 1))
-        r[0, 0] = root_w
-        r[0, 1:] = root_w * gram.mean[kept]
-        r[1:, 1:] = r_kept * scales[kept]
-        r = r / np.linalg.norm(r, axis=0)
-        columns = (INTERCEPT, *(int(c) for c in kept))
+    r, columns = scaled_design_factor(gram.weight_sum, gram.mean, kept, r_kept, scales, scaling)
     if r.size == 0:
         return ConditionDiagnostics(scaling, np.ones(0), np.zeros((0, 0)), columns, reduced)
     _, mu, vt = sla.svd(r, full_matrices=False, check_finite=False, lapack_driver="gesdd")
@@ -395,3 +465,42 @@ def _belsley(gram: CentredGram, kept: IntArray, r_kept: FloatArray, scales: Floa
     phi = (vt.T / mu) ** 2  # phi[j, k] = v_jk^2 / mu_k^2
     proportions = (phi / phi.sum(axis=1, keepdims=True)).T  # [k, j]; each column sums to 1
     return ConditionDiagnostics(scaling, indices, proportions, columns, reduced)
+
+
+def scaled_design_factor(weight_sum: float, means: FloatArray, kept: IntArray,
+                         r_kept: FloatArray, scales: FloatArray, scaling: Scaling
+                         ) -> tuple[FloatArray, tuple[int, ...]]:
+    """The factor whose singular values give the Belsley-Kuh-Welsch condition indices.
+
+    ``r_kept`` is the upper factor of the correlation matrix of the ``kept`` columns (any subset
+    of the design, e.g. a candidate set in ``gate.suggest``); ``scales`` are centred column
+    norms and ``means`` the (weighted) means over all design columns.
+
+    unit_length: [[sqrt(W), sqrt(W) m'], [0, R11]] with R11 = r_kept * s, each column scaled to
+    unit length (Belsley, Kuh & Welsch 1980, ch. 3); standardized: ``r_kept`` itself.
+    Returns the factor and the design column of each of its columns (INTERCEPT = -1).
+    """
+    if scaling == "standardized":
+        return r_kept, tuple(int(k) for k in kept)
+    root_w = np.sqrt(weight_sum)
+    k = kept.size
+    r = np.zeros((k + 1, k + 1))
+    r[0, 0] = root_w
+    r[0, 1:] = root_w * means[kept]
+    r[1:, 1:] = r_kept * scales[kept]
+    r = r / np.linalg.norm(r, axis=0)
+    return r, (INTERCEPT, *(int(c) for c in kept))
+
+
+def condition_indices(weight_sum: float, means: FloatArray, kept: IntArray, r_kept: FloatArray,
+                      scales: FloatArray, scaling: Scaling) -> FloatArray:
+    """Condition indices mu_max / mu_k (ascending) of the design restricted to ``kept``.
+
+    Singular values only (no proportions), for searches that evaluate many column subsets.
+    Belsley, Kuh & Welsch (1980), "Regression Diagnostics", ch. 3.
+    """
+    r, _ = scaled_design_factor(weight_sum, means, kept, r_kept, scales, scaling)
+    if r.size == 0:
+        return np.ones(0)
+    mu = sla.svd(r, compute_uv=False, check_finite=False, lapack_driver="gesdd")
+    return np.asarray(mu[0] / mu)
