@@ -1,0 +1,222 @@
+"""Property tests (hypothesis): what must hold for every table, not just the ones we thought of.
+
+Sources of the properties: VIF_j = 1 / (1 - R^2_j) >= 1 by definition; VIF, GVIF and Pearson r
+depend only on the span of each column's co-features and on centred, scaled columns, so they
+are invariant to column order, shifts and rescaling (Belsley, Kuh & Welsch 1980, ch. 3 for the
+scaling of condition indices); the pairwise update of Chan, Golub & LeVeque (1979) and TSQR
+(Demmel et al. 2012) are exact in exact arithmetic, so any split of the rows agrees to rounding.
+Data are invented: hypothesis draws seeds and shapes, numpy draws the values.
+"""
+
+from __future__ import annotations
+
+import random
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pytest
+from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import strategies as st
+from hypothesis.extra import numpy as hnp
+
+import gate
+from gate.policy import Policy
+from gate.statistics import CentredGram, TriangularFactor
+from gate.verdict import Verdict
+
+PROPERTY_SETTINGS = settings(max_examples=40, deadline=None,
+                             suppress_health_check=[HealthCheck.too_slow])
+RTOL = 1e-10
+
+
+def correlated_frame(seed: int, rows: int, features: int, strength: float) -> pd.DataFrame:
+    """Invented sensor table: features share a common factor with weight ``strength``."""
+    rng = np.random.default_rng(seed)
+    common = rng.normal(size=(rows, 1))
+    values = strength * common + rng.normal(size=(rows, features))
+    values = values * rng.uniform(0.5, 20.0, features) + rng.uniform(-50, 50, features)
+    return pd.DataFrame(values, columns=[f"sensor_{k}" for k in range(features)])
+
+
+def check(frame: pd.DataFrame, chunk_rows: int | None = None, **overrides: Any) -> Verdict:
+    return gate.check(frame, Policy.model_validate({"name": "property", **overrides}),
+                      chunk_rows=chunk_rows)
+
+
+frames = st.builds(
+    correlated_frame,
+    seed=st.integers(0, 2**32 - 1),
+    rows=st.integers(12, 80),
+    features=st.integers(2, 6),
+    strength=st.floats(0.0, 8.0),
+)
+
+
+def assert_close(actual: Any, expected: Any, rtol: float = RTOL) -> None:
+    np.testing.assert_allclose(np.asarray(actual, float), np.asarray(expected, float),
+                               rtol=rtol, atol=0)
+
+
+@PROPERTY_SETTINGS
+@given(frame=frames)
+def test_vif_is_at_least_one(frame: pd.DataFrame) -> None:
+    vif = check(frame).diagnostics.vif
+    assert np.all(vif >= 1.0 - 1e-12)
+
+
+@PROPERTY_SETTINGS
+@given(values=hnp.arrays(np.float64, st.tuples(st.integers(5, 30), st.integers(2, 5)),
+                         elements=st.floats(-1e3, 1e3, allow_nan=False, allow_infinity=False)))
+def test_vif_is_at_least_one_or_infinite_for_arbitrary_values(values: np.ndarray) -> None:
+    # Arbitrary (often degenerate) values: every VIF is >= 1 or infinite, never NaN or < 1.
+    frame = pd.DataFrame(values, columns=[f"x{k}" for k in range(values.shape[1])])
+    d = check(frame).diagnostics
+    assert not np.isnan(d.vif).any()
+    assert np.all(d.vif >= 1.0 - 1e-9)
+    assert np.all(np.isinf(d.vif) == d.in_dependency)
+    assert 1 <= d.rank <= min(values.shape[0], values.shape[1] + 1)
+
+
+@PROPERTY_SETTINGS
+@given(frame=frames, order_seed=st.integers(0, 2**32 - 1))
+def test_invariant_to_column_order(frame: pd.DataFrame, order_seed: int) -> None:
+    order = list(frame.columns)
+    random.Random(order_seed).shuffle(order)
+    base, other = check(frame), check(frame[order])
+    assert_close(pd.Series(other.vif())[list(frame.columns)], pd.Series(base.vif()))
+    assert_close(other.diagnostics.condition.indices, base.diagnostics.condition.indices)
+    position = [order.index(c) for c in frame.columns]
+    assert_close(other.diagnostics.correlation[np.ix_(position, position)],
+                 base.diagnostics.correlation, rtol=1e-12)
+
+
+@PROPERTY_SETTINGS
+@given(frame=frames, column=st.integers(0, 5), shift=st.floats(-1e3, 1e3),
+       scale=st.floats(1e-3, 1e3), negate=st.booleans())
+def test_invariant_to_shift_and_rescale(frame: pd.DataFrame, column: int, shift: float,
+                                        scale: float, negate: bool) -> None:
+    name = frame.columns[column % frame.shape[1]]
+    moved = frame.copy()
+    moved[name] = (frame[name] + shift * frame[name].std()) * (-scale if negate else scale)
+    base, other = check(frame), check(moved)
+    assert_close(other.diagnostics.vif, base.diagnostics.vif)
+    # Standardised condition indices centre the columns: shift- and scale-invariant.
+    standardized = {"limits": {"condition_number": {"scaling": "standardized"}}}
+    assert_close(check(moved, **standardized).diagnostics.condition.indices,
+                 check(frame, **standardized).diagnostics.condition.indices)
+    assert_close(np.abs(other.diagnostics.correlation), np.abs(base.diagnostics.correlation),
+                 rtol=1e-10)
+
+
+@PROPERTY_SETTINGS
+@given(frame=frames, column=st.integers(0, 5), scale=st.floats(1e-3, 1e3))
+def test_unit_length_condition_indices_invariant_to_rescaling(frame: pd.DataFrame, column: int,
+                                                              scale: float) -> None:
+    # Belsley, Kuh & Welsch (1980): unit-length scaling removes the columns' units (not their
+    # means, so no shift invariance with the intercept).
+    name = frame.columns[column % frame.shape[1]]
+    scaled = frame.assign(**{name: frame[name] * scale})
+    assert_close(check(scaled).diagnostics.condition.indices,
+                 check(frame).diagnostics.condition.indices)
+
+
+@PROPERTY_SETTINGS
+@given(frame=frames, chunk_rows=st.integers(1, 90))
+def test_chunked_check_agrees_with_whole_table(frame: pd.DataFrame, chunk_rows: int) -> None:
+    whole, chunked = check(frame), check(frame, chunk_rows=chunk_rows)
+    a, b = whole.diagnostics, chunked.diagnostics
+    assert_close(b.vif, a.vif)
+    assert_close(b.means, a.means)
+    assert_close(b.scales, a.scales)
+    assert_close(b.condition.indices, a.condition.indices)
+    np.testing.assert_allclose(b.correlation, a.correlation, rtol=0, atol=1e-12)
+    assert b.rank == a.rank
+
+
+@PROPERTY_SETTINGS
+@given(seed=st.integers(0, 2**32 - 1), rows=st.integers(6, 60), chunk_rows=st.integers(1, 60))
+def test_chunked_check_agrees_on_exact_dependencies(seed: int, rows: int, chunk_rows: int
+                                                    ) -> None:
+    # Invented: total_kwh = heating_kwh + lighting_kwh exactly; the exact pass runs chunked too.
+    rng = np.random.default_rng(seed)
+    heating = rng.integers(0, 50, rows).astype(float)
+    lighting = rng.integers(0, 50, rows).astype(float)
+    frame = pd.DataFrame({"heating_kwh": heating, "lighting_kwh": lighting,
+                          "total_kwh": heating + lighting,
+                          "outdoor_c": rng.normal(10, 5, rows)})
+    assume(np.linalg.matrix_rank(np.column_stack([np.ones(rows), heating, lighting,
+                                                  frame["outdoor_c"]])) == 4)
+    whole, chunked = check(frame), check(frame, chunk_rows=chunk_rows)
+    a, b = whole.diagnostics, chunked.diagnostics
+    assert a.rank == b.rank == 4
+    # The relations are canonical (fixed by column order), so even their wording agrees.
+    assert [(sorted(d.terms), d.expressed, d.kind) for d in a.dependencies] == \
+        [(sorted(d.terms), d.expressed, d.kind) for d in b.dependencies]
+    assert [d.expressed for d in a.dependencies] == [2]  # total_kwh = heating + lighting
+    for da, db in zip(a.dependencies, b.dependencies):
+        assert_close([db.terms[k] for k in sorted(db.terms)],
+                     [da.terms[k] for k in sorted(da.terms)], rtol=1e-9)
+    assert_close(b.vif[3], a.vif[3])
+
+
+# --- the accumulators themselves ------------------------------------------------------------
+
+def _split(rows: int, rng: np.random.Generator) -> list[tuple[int, int]]:
+    cuts = sorted(set(rng.integers(0, rows + 1, rng.integers(0, 8)).tolist()) | {0, rows})
+    return list(zip(cuts[:-1], cuts[1:]))
+
+
+def _merge_randomly(parts: list[Any], rng: np.random.Generator) -> Any:
+    """Merge in a random tree: pick two neighbours or any two, merge, repeat."""
+    items = list(parts)
+    while len(items) > 1:
+        i, j = sorted(rng.choice(len(items), 2, replace=False).tolist())
+        first, second = (items[i], items[j]) if rng.random() < 0.5 else (items[j], items[i])
+        merged = first.merge(second)
+        items = [x for k, x in enumerate(items) if k not in (i, j)] + [merged]
+    return items[0]
+
+
+@PROPERTY_SETTINGS
+@given(seed=st.integers(0, 2**32 - 1), rows=st.integers(2, 80), features=st.integers(1, 6),
+       weighted=st.booleans())
+def test_centred_gram_merges_in_any_order(seed: int, rows: int, features: int,
+                                          weighted: bool) -> None:
+    rng = np.random.default_rng(seed)
+    values = rng.normal(size=(rows, features)) * rng.uniform(0.1, 100, features) \
+        + rng.uniform(-1e3, 1e3, features)
+    weights = rng.uniform(0.0, 3.0, rows) if weighted else None
+    whole = CentredGram.from_block(values, weights)
+    parts = [CentredGram.from_block(values[a:b], None if weights is None else weights[a:b])
+             for a, b in _split(rows, rng)]
+    merged = _merge_randomly(parts, rng)
+    assert merged.rows == whole.rows
+    assert merged.weight_sum == pytest.approx(whole.weight_sum, rel=1e-13)
+    assert_close(merged.mean, whole.mean)
+    scale = np.sqrt(np.outer(np.diag(whole.comoment), np.diag(whole.comoment)))
+    np.testing.assert_array_less(np.abs(merged.comoment - whole.comoment), RTOL * scale + 1e-300)
+
+
+@PROPERTY_SETTINGS
+@given(seed=st.integers(0, 2**32 - 1), rows=st.integers(1, 80), features=st.integers(1, 6))
+def test_triangular_factor_merge_agrees_with_one_qr(seed: int, rows: int, features: int
+                                                    ) -> None:
+    # TSQR (Demmel, Grigori, Hoemmen & Langou 2012): R'R = A'A whatever the split; with a
+    # non-negative diagonal the factor is unique when A has full column rank.
+    rng = np.random.default_rng(seed)
+    block = rng.normal(size=(rows, features)) * rng.uniform(0.1, 10, features)
+    whole = TriangularFactor.from_block(block)
+    merged = _merge_randomly([TriangularFactor.from_block(block[a:b])
+                              for a, b in _split(rows, rng)], rng)
+    gram = block.T @ block
+    scale = np.sqrt(np.outer(np.diag(gram), np.diag(gram)))
+    for factor in (whole, merged):
+        r = factor.square()
+        assert r.shape == (features, features)
+        assert np.all(np.diag(r) >= 0)
+        assert np.allclose(np.tril(r, -1), 0.0)
+        np.testing.assert_array_less(np.abs(r.T @ r - gram), RTOL * scale + 1e-300)
+    if rows >= features:
+        r_a, r_b = merged.square(), whole.square()
+        np.testing.assert_allclose(r_a, r_b, rtol=0, atol=1e-9 * np.abs(r_b).max())
