@@ -186,6 +186,29 @@ def _as_text(column: pa.ChunkedArray | pa.Array) -> pa.ChunkedArray | pa.Array:
     return column
 
 
+class InfiniteValuesError(DesignError):
+    """A feature column holds +-inf. Engines that read on restate the count for the whole
+    table with :meth:`with_total` (see :func:`count_infinite`)."""
+
+    def __init__(self, table: str, column: str, count: int, first_row: int, last_row: int
+                 ) -> None:
+        self.table, self.column, self.count = table, column, count
+        self.first_row, self.last_row = first_row, last_row
+        super().__init__(f"{table}: column '{column}' has {count:,} infinite value"
+                         f"{'s' if count != 1 else ''} (the first in rows {first_row:,}-"
+                         f"{last_row:,}); replace them or exclude the column")
+
+    def with_total(self, count: int) -> InfiniteValuesError:
+        return InfiniteValuesError(self.table, self.column, count, self.first_row,
+                                   self.last_row)
+
+
+def count_infinite(chunk: pa.Table, column: str) -> int:
+    """Number of +-inf values of one numeric column in a chunk (error path only)."""
+    values = pc.cast(chunk.column(column), pa.float64())
+    return int(pc.sum(pc.is_inf(values)).as_py() or 0)
+
+
 def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
                  ) -> tuple[FloatArray, FloatArray | None, RowCounts]:
     """One chunk -> (values over ``plan.layout``, weights or None, row counts)."""
@@ -220,9 +243,8 @@ def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
             col = values[:, j]
             infinite = int(np.isinf(col).sum())
             if infinite:
-                raise DesignError(f"{plan.table}: column '{layout[j]}' has {infinite} infinite "
-                                  f"value{'s' if infinite > 1 else ''} in rows {first_row:,}-"
-                                  f"{first_row + n - 1:,}; replace them or exclude the column")
+                raise InfiniteValuesError(plan.table, layout[j], infinite, first_row,
+                                          first_row + n - 1)
             nan_rows = np.isnan(col)
             if nan_rows.any():
                 missing[layout[j]] = int(nan_rows.sum())

@@ -6,7 +6,7 @@ statistic, so peak memory is one chunk plus O(p^2) whatever the number of rows.
 
 from __future__ import annotations
 
-from gate.design import DesignPlan, RowCounts, encode_block
+from gate.design import DesignPlan, InfiniteValuesError, RowCounts, count_infinite, encode_block
 from gate.diagnostics import ExactPassPlan, exact_pass_block
 from gate.statistics import CentredGram, TriangularFactor
 from gate.table import TableSource
@@ -17,8 +17,14 @@ def main_pass(source: TableSource, plan: DesignPlan, *, chunk_rows: int | None =
     """Centred Gram over the accumulation layout, and the row counts."""
     gram = CentredGram.empty(len(plan.layout))
     counts = RowCounts()
-    for chunk in source.chunks(plan.read_columns, plan.chunk_rows(chunk_rows)):
-        values, weights, chunk_counts = encode_block(plan, chunk, first_row=counts.read)
+    chunks = iter(source.chunks(plan.read_columns, plan.chunk_rows(chunk_rows)))
+    for chunk in chunks:
+        try:
+            values, weights, chunk_counts = encode_block(plan, chunk, first_row=counts.read)
+        except InfiniteValuesError as exc:
+            # Read on (this column only) so the message gives the whole table's count.
+            total = exc.count + sum(count_infinite(rest, exc.column) for rest in chunks)
+            raise exc.with_total(total) from None
         gram = gram.merge(CentredGram.from_block(values, weights))
         counts = counts.add(chunk_counts)
     return gram, counts
