@@ -258,6 +258,8 @@ class _Problem:
             return _State(False, [_Breach("singular", units, math.inf,
                                           f"{self.label}rank deficient")],
                           dict.fromkeys(units, math.inf))
+        if kept.size == 0:
+            return _State(True, [], {})
         inverse, info = sla.lapack.dtrtri(r, lower=0)
         if info != 0 or not np.all(np.isfinite(inverse)):
             units = tuple(dict.fromkeys(self.column_unit[j] for j in kept))
@@ -575,7 +577,8 @@ class _Search:
             return 0
         forced = self.forced(base, state, candidates, set()) or set()
         rest = set(candidates) - forced
-        return len(forced) + self.disjoint_pairs(self.state(base | frozenset(forced)), rest)
+        bound = len(forced) + self.disjoint_pairs(self.state(base | frozenset(forced)), rest)
+        return max(1, bound)  # the base design fails, so at least one drop is needed
 
 
 # --- public entry point ----------------------------------------------------------------------
