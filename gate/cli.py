@@ -11,6 +11,7 @@ import sys
 import traceback
 from collections.abc import Callable, Sequence
 from pathlib import Path
+from typing import Any
 
 from gate.errors import GateError
 
@@ -58,6 +59,14 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--label", metavar="TEXT", help="free text carried into the verdict")
     check.add_argument("--chunk-rows", metavar="N", type=int,
                        help="rows per chunk when streaming (default: sized from the width)")
+    check.add_argument("--junit", metavar="FILE", type=Path,
+                       help="also write JUnit XML (one test case per rule and subject)")
+    check.add_argument("--audit-log", metavar="FILE", type=Path,
+                       help="append a hash-chained entry to this JSON Lines audit log")
+    check.add_argument("--format", choices=("text", "json"), default="text",
+                       help="stdout: a text summary (default) or the verdict.json document")
+    check.add_argument("--quiet", action="store_true",
+                       help="print nothing on stdout in text format (errors still go to stderr)")
     check.set_defaults(handler=_run_check)
 
     demo = commands.add_parser("demo", help="run the gate on invented bike-share demo tables",
@@ -66,7 +75,56 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--out", metavar="DIR", default="gate-demo",
                       help="folder for the demo tables and artefacts (default: gate-demo)")
     demo.set_defaults(handler=_run_demo)
+    _add_artefact_commands(commands)
     return parser
+
+
+def _add_artefact_commands(commands: Any) -> None:
+    """`gate audit`, `gate diff`, `gate policy`, `gate verdict` (artefacts and schemas)."""
+    audit = commands.add_parser("audit", help="work with an audit log",
+                                description="Work with a hash-chained audit log.")
+    audit_commands = audit.add_subparsers(title="audit commands", metavar="COMMAND")
+    verify = audit_commands.add_parser(
+        "verify", help="check the hash chain; exit 1 at the first bad entry",
+        description="Check every entry of an audit log; report the first edited, removed, "
+        "reordered or truncated entry (exit 1), else exit 0.")
+    verify.add_argument("file", metavar="FILE", type=Path)
+    verify.add_argument("--head", metavar="SHA256",
+                        help="the head hash recorded earlier: also detect entries cut off the end")
+    verify.set_defaults(handler=_run_audit_verify)
+
+    diff = commands.add_parser(
+        "diff", help="compare two verdicts; exit 1 when NEW is worse",
+        description="Compare two verdict.json files: new and resolved findings, worsened VIF "
+        "and |r|, status change. Exit 1 when NEW is worse, else 0.")
+    diff.add_argument("old", metavar="OLD", type=Path)
+    diff.add_argument("new", metavar="NEW", type=Path)
+    diff.add_argument("--format", choices=("text", "json"), default="text")
+    diff.set_defaults(handler=_run_diff)
+
+    policy = commands.add_parser("policy", help="create, validate or describe policy files",
+                                 description="Create, validate or describe policy files.")
+    policy_commands = policy.add_subparsers(title="policy commands", metavar="COMMAND")
+    init = policy_commands.add_parser("init", help="write a commented starter policy",
+                                      description="Write a commented starter policy (never "
+                                      "overwrites an existing file).")
+    init.add_argument("file", metavar="FILE", nargs="?", type=Path,
+                      help="where to write it (default: gate-policy.yaml)")
+    init.set_defaults(handler=_run_policy_init)
+    validate = policy_commands.add_parser("validate", help="check a policy file; exit 2 if invalid",
+                                          description="Check a policy file; exit 0 when valid, "
+                                          "2 with the first problem when not.")
+    validate.add_argument("file", metavar="FILE", type=Path)
+    validate.set_defaults(handler=_run_policy_validate)
+    policy_schema = policy_commands.add_parser("schema", help="print the policy JSON Schema")
+    policy_schema.set_defaults(handler=_run_policy_schema)
+
+    verdict = commands.add_parser("verdict", help="describe verdict.json",
+                                  description="Describe the verdict.json document.")
+    verdict_commands = verdict.add_subparsers(title="verdict commands", metavar="COMMAND")
+    verdict_schema = verdict_commands.add_parser("schema",
+                                                 help="print the verdict.json JSON Schema")
+    verdict_schema.set_defaults(handler=_run_verdict_schema)
 
 
 def _run_check(args: argparse.Namespace) -> int:
@@ -75,11 +133,79 @@ def _run_check(args: argparse.Namespace) -> int:
     from gate.outputs import write_check_outputs
 
     verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows)
-    written = write_check_outputs(verdict, Path(args.out))
-    for line in summary_lines(verdict):
-        print(line)
-    print(f"  wrote {', '.join(str(p) for p in written)}")
+    written = write_check_outputs(verdict, Path(args.out), junit=getattr(args, "junit", None),
+                                  audit_log=getattr(args, "audit_log", None))
+    if getattr(args, "format", "text") == "json":
+        from gate.artefacts.verdict_json import verdict_json
+
+        sys.stdout.write(verdict_json(verdict))
+    elif not getattr(args, "quiet", False):
+        for line in summary_lines(verdict):
+            print(line)
+        print(f"  wrote {', '.join(str(p) for p in written)}")
     return verdict.exit_code
+
+
+def _run_audit_verify(args: argparse.Namespace) -> int:
+    from gate.artefacts.audit import verify_chain
+
+    report = verify_chain(args.file, expected_head=args.head)
+    print(report.describe(), file=sys.stdout if report.ok else sys.stderr)
+    return 0 if report.ok else 1
+
+
+def _run_diff(args: argparse.Namespace) -> int:
+    import json
+
+    from gate.diffing import diff_files
+
+    result = diff_files(args.old, args.new)
+    if args.format == "json":
+        print(json.dumps(result.to_dict(), indent=2, allow_nan=False))
+    else:
+        for line in result.lines():
+            print(line)
+    return result.exit_code
+
+
+def _run_policy_init(args: argparse.Namespace) -> int:
+    from gate.policy_template import write_starter_policy
+
+    file = write_starter_policy(args.file)
+    print(f"wrote {file}: edit it, then check it with `gate policy validate {file}`")
+    return 0
+
+
+def _run_policy_validate(args: argparse.Namespace) -> int:
+    from gate.policy import load_policy, today_utc
+
+    policy = load_policy(args.file)
+    limits = policy.limits
+    print(f"{args.file}: valid policy '{policy.name}' (|r| >= {limits.pairwise_correlation.max:g} "
+          f"{limits.pairwise_correlation.level}; VIF > {limits.vif.max:g} {limits.vif.level}; "
+          f"condition index > {limits.condition_number.max:g} {limits.condition_number.level}; "
+          f"rank deficiency {limits.rank_deficiency.level}; {len(policy.waivers)} waiver"
+          f"{'' if len(policy.waivers) == 1 else 's'})")
+    today = today_utc()
+    for number, waiver in enumerate(policy.waivers, start=1):
+        if waiver.expires < today:
+            print(f"  note: waiver {number} ({waiver.rule}: {', '.join(waiver.features)}) expired "
+                  f"on {waiver.expires.isoformat()}; checks will report it as a warning")
+    return 0
+
+
+def _run_policy_schema(args: argparse.Namespace) -> int:
+    from gate.schemas import policy_schema, schema_text
+
+    sys.stdout.write(schema_text(policy_schema()))
+    return 0
+
+
+def _run_verdict_schema(args: argparse.Namespace) -> int:
+    from gate.schemas import schema_text, verdict_schema
+
+    sys.stdout.write(schema_text(verdict_schema()))
+    return 0
 
 
 def _run_demo(args: argparse.Namespace) -> int:

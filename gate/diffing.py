@@ -3,6 +3,7 @@
 Works on verdict.json documents (not Verdict objects), so verdicts written by any earlier run
 can be compared. NEW is worse when its status rank is higher (pass < warn < fail) or when it
 has an unwaived fail or warn finding that OLD did not have unwaived (new, or no longer waived).
+VIF and |r| changes below a small materiality step (see the constants) are not listed.
 """
 
 from __future__ import annotations
@@ -16,8 +17,11 @@ from typing import Any
 from gate.errors import GateError
 
 STATUS_RANK = {"pass": 0, "warn": 1, "fail": 2}
-#: Changes smaller than this (relative) are rounding, not a worsening.
-RELATIVE_NOISE = 1e-9
+#: A VIF counts as worsened when it grew by more than this fraction (1 %), and a pair's |r|
+#: when it grew by more than this amount: smaller moves are sampling noise between two tables
+#: (a project convention, no source).
+VIF_MATERIAL_INCREASE = 0.01
+R_MATERIAL_INCREASE = 0.01
 
 FindingKey = tuple[str, tuple[str, ...]]
 
@@ -168,7 +172,7 @@ def _pairs_worsened(old: dict[str, Any], new: dict[str, Any]) -> list[Worsened]:
     out: list[Worsened] = []
     for key, r in _pair_map(new).items():
         before = old_pairs.get(key)
-        if before is None or abs(r) > abs(before) * (1 + RELATIVE_NOISE):
+        if before is None or abs(r) > abs(before) + R_MATERIAL_INCREASE:
             out.append(Worsened(f"{key[0]} ~ {key[1]}",
                                 None if before is None else abs(before), abs(r),
                                 "newly at or above the limit" if before is None else ""))
@@ -187,7 +191,7 @@ def _pair_map(document: dict[str, Any]) -> dict[tuple[str, str], float]:
 def _increased(old: float, new: float) -> bool:
     if math.isinf(old):
         return False
-    return math.isinf(new) or new > old * (1 + RELATIVE_NOISE)
+    return math.isinf(new) or new > old * (1 + VIF_MATERIAL_INCREASE)
 
 
 def _inf(value: Any) -> float:

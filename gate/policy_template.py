@@ -25,7 +25,8 @@ columns:
 
 missing: drop_rows                # drop_rows: drop incomplete rows and count them | fail
 
-limits:                           # each limit: level fail | warn | off
+limits:
+  # Each limit has a level: fail | warn | "off" (quote "off": bare off is YAML for false).
   # |r| >= 0.8 between two features: a common rule of thumb (common practice, no source).
   pairwise_correlation: {max: 0.8, level: warn, method: pearson}
   # VIF > 5: standard errors inflated by more than sqrt(5) = 2.24x (common practice, no

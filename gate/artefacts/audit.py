@@ -173,7 +173,9 @@ def verify_chain(path: str | Path, *, expected_head: str | None = None) -> Chain
     if not torn:
         lines = lines[:-1]
     prev = GENESIS
-    hashes: dict[str, int] = {}  # line hash -> line number, to tell reordering from removal
+    # line hash -> line number over the whole file, to tell reordering from removal
+    everywhere = {hashlib.sha256(line).hexdigest(): k for k, line in enumerate(lines, start=1)}
+    hashes: dict[str, int] = {}  # the same, for the lines verified so far
     for number, line in enumerate(lines, start=1):
         def bad(problem: str, at: int = number) -> ChainReport:
             return ChainReport(name, number - 1, prev if number > 1 else None, at, problem)
@@ -192,13 +194,20 @@ def verify_chain(path: str | Path, *, expected_head: str | None = None) -> Chain
         if entry["hash"] != entry_hash(entry):
             return bad("edited: its content no longer matches its hash")
         if entry["prev"] != prev:
-            if entry["prev"] in hashes:
-                return bad(f"reordered: it follows line {hashes[entry['prev']]}, not the line "
-                           "before it")
+            before = everywhere.get(entry["prev"])
             if entry["prev"] == GENESIS:
                 return bad("reordered: it claims to be the first entry")
-            return bad(f"removed: the entry before it (seq {entry['seq'] - 1}) is missing or "
-                       "was edited")
+            if before is not None and before > number:
+                return bad(f"reordered: it should follow line {before}, which comes after it")
+            if before is not None:
+                return bad(f"removed: it should follow line {before}; the entries between are "
+                           "missing")
+            if entry["seq"] == number and number > 1:
+                # Nothing is missing, so the line before was rewritten (hash recomputed).
+                return ChainReport(name, number - 2, None, number - 1,
+                                   "edited: its bytes no longer match the hash recorded by the "
+                                   "entry after it")
+            return bad(f"removed: the entry before it (seq {entry['seq'] - 1}) is missing")
         if entry["seq"] != number:
             return bad(f"removed or reordered: seq {entry['seq']} at entry {number}")
         prev = hashlib.sha256(line).hexdigest()

@@ -584,7 +584,7 @@ def _condition_section(verdict: Verdict) -> str:
     scaling = "unit-length columns" if cond.scaling == "unit_length" else "standardised columns"
     reduced = (" Computed after dropping one column per exact dependency (the full design is "
                "singular, its condition number infinite)." if cond.reduced else "")
-    table = table.tab_source_note(
+    explain = _note(
         f"Belsley, Kuh & Welsch (1980): {scaling} with an intercept. \u25c6 marks proportions "
         f"\u2265 {limit.proportion:g} on rows whose index exceeds {limit.max:g}: those columns "
         f"share the near dependency.{reduced}")
@@ -593,10 +593,10 @@ def _condition_section(verdict: Verdict) -> str:
                  f" (limit {limit.max:g}, {limit.level}).")
     notes = _hidden_note(len(shown_rows), count, "condition indices (largest first)")
     if len(columns) < len(cond.columns):
-        notes += _note(f"Showing {len(columns)} of {len(cond.columns)} proportion columns: "
+        notes += _note(f"Showing {len(columns)} of {len(cond.columns):,} proportion columns: "
                        "those involved in the largest indices first. verdict.json lists the "
                        "proportions of every breaching index.")
-    return head + _fragment(table) + notes
+    return head + _fragment(table) + explain + notes
 
 
 def _dependencies_section(verdict: Verdict) -> str:
