@@ -14,9 +14,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-import pyarrow.feather as feather
 import pyarrow.parquet as pq
 import pytest
+from pyarrow import feather
 
 from gate.cli import main as cli_main
 from gate.policy import Policy, parse_policy

@@ -273,8 +273,8 @@ POLICY_CASES = {
     "wrong_version": ("policy_version: 9\nname: fleet\n", ["policy_version", "line 1"]),
     "bad_missing": ("policy_version: 1\nname: fleet\nmissing: ignore\n", ["missing", "line 3"]),
     "waiver_without_owner": (
-        "policy_version: 1\nname: fleet\nwaivers:\n  - rule: vif\n    features: [a]\n"
-        "    reason: kept\n    expires: 2030-01-01\n", ["waivers[0]", "owner"]),
+        ("policy_version: 1\nname: fleet\nwaivers:\n  - rule: vif\n    features: [a]\n"
+         "    reason: kept\n    expires: 2030-01-01\n"), ["waivers[0]", "owner"]),
 }
 
 

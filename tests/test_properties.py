@@ -10,6 +10,7 @@ Data are invented: hypothesis draws seeds and shapes, numpy draws the values.
 
 from __future__ import annotations
 
+import itertools
 import random
 from typing import Any
 
@@ -164,7 +165,7 @@ def test_chunked_check_agrees_on_exact_dependencies(seed: int, rows: int, chunk_
 
 def _split(rows: int, rng: np.random.Generator) -> list[tuple[int, int]]:
     cuts = sorted(set(rng.integers(0, rows + 1, rng.integers(0, 8)).tolist()) | {0, rows})
-    return list(zip(cuts[:-1], cuts[1:]))
+    return list(itertools.pairwise(cuts))
 
 
 def _merge_randomly(parts: list[Any], rng: np.random.Generator) -> Any:

@@ -23,7 +23,6 @@ from gate.diagnostics import INTERCEPT
 from gate.policy import Policy
 from gate.verdict import Verdict
 
-
 Recorder = Callable[[str, float], None]
 SEED = 20261202
 
