@@ -1,0 +1,252 @@
+"""summary.html: a self-contained page, every section present, every user string escaped, the
+numbers matching outside references, and large designs capped."""
+
+from __future__ import annotations
+
+import datetime as dt
+import html
+import math
+import re
+import subprocess
+import sys
+from html.parser import HTMLParser
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pytest
+from conftest import make_clean_frame, make_docks_frame, policy_from
+
+import gate.artefacts.html_summary as summary
+from gate.api import check
+from gate.artefacts.html_summary import CSP, summary_html
+from gate.verdict import Verdict
+
+TODAY = dt.date(2026, 12, 1)
+HOSTILE = "<script>alert(1)</script>"
+SECTIONS = ("verdict", "findings", "features", "pairs", "matrix", "condition", "dependencies",
+            "missing", "caution")
+
+HOSTILE_POLICY = """
+policy_version: 1
+name: "night <b>shift</b>"
+waivers:
+  - rule: pairwise_correlation
+    features: [air_temp_c, felt_temp_c]
+    reason: "<img src=x onerror=alert(2)> kept on purpose"
+    owner: "ops & <i>planning</i>"
+    expires: 2027-06-30
+  - rule: vif
+    features: [wind_kmh]
+    reason: lapsed
+    owner: ops
+    expires: 2025-06-30
+"""
+
+
+class _Elements(HTMLParser):
+    """Collects tag names and element ids as a browser's parser would see them."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.tags: list[str] = []
+        self.ids: list[str] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.tags.append(tag)
+        self.ids += [v for k, v in attrs if k == "id" and v]
+        # no attribute injection: event handlers never appear on any element
+        assert not any(k.startswith("on") for k, _ in attrs), (tag, attrs)
+
+    def handle_data(self, data: str) -> None:
+        self.text.append(data)
+
+
+def _parse(page: str) -> _Elements:
+    parser = _Elements()
+    parser.feed(page)
+    return parser
+
+
+def _section(page: str, name: str) -> str:
+    start = page.index(f'id="sec-{name}"')
+    return page[start:page.index("</section>", start)]
+
+
+def _text(fragment: str) -> str:
+    return html.unescape(re.sub(r"<[^>]+>", " ", fragment))
+
+
+@pytest.fixture(scope="module")
+def docks_verdict() -> Verdict:
+    frame = make_docks_frame()
+    frame[HOSTILE] = np.random.default_rng(9).normal(size=len(frame))
+    frame.loc[[4, 8], "wind_kmh"] = np.nan
+    return check(frame, policy_from(HOSTILE_POLICY), label="nightly <run> & co", today=TODAY)
+
+
+@pytest.fixture(scope="module")
+def docks_page(docks_verdict: Verdict) -> str:
+    return summary_html(docks_verdict)
+
+
+def test_page_is_self_contained(docks_page: str) -> None:
+    assert docks_page.startswith("<!DOCTYPE html>")
+    assert f'<meta http-equiv="Content-Security-Policy" content="{CSP}">' in docks_page
+    assert re.search(r"<title>[^<]+</title>", docks_page)
+    assert not re.search(r"https?://", docks_page)
+    assert not re.search(r"@import|url\(|<link|<script|<iframe|<img", docks_page, re.I)
+    parsed = _parse(docks_page)
+    assert "script" not in parsed.tags and "img" not in parsed.tags
+    assert len(parsed.ids) == len(set(parsed.ids)), "element ids must be unique"
+
+
+def test_every_section_is_present(docks_page: str) -> None:
+    for name in SECTIONS:
+        assert f'id="sec-{name}"' in docks_page
+    assert docks_page.count("<section") == len(SECTIONS)
+
+
+def test_user_strings_are_escaped(docks_page: str) -> None:
+    for raw in (HOSTILE, "<img src=x", "<b>shift</b>", "<i>planning</i>", "<run>"):
+        assert raw not in docks_page
+    text = "".join(_parse(docks_page).text)
+    for shown in (HOSTILE, "<img src=x onerror=alert(2)> kept on purpose", "night <b>shift</b>",
+                  "ops & <i>planning</i>", "nightly <run> & co"):
+        assert shown in text  # visible as text, exactly as written
+
+
+def test_header_carries_status_in_words_and_provenance(docks_verdict: Verdict,
+                                                       docks_page: str) -> None:
+    header = _text(_section(docks_page, "verdict"))
+    assert docks_verdict.status == "fail"
+    assert "FAIL" in _text(docks_page[:docks_page.index("<main>")])
+    for item in ("FAIL", docks_verdict.policy.sha256, docks_verdict.created_at,
+                 docks_verdict.tool_version, f"{docks_verdict.table.rows_used:,} used",
+                 "2 dropped"):
+        assert item in header
+
+
+def test_findings_show_waivers_expired_and_stale(docks_page: str) -> None:
+    findings = _text(_section(docks_page, "findings"))
+    assert "waived" in findings and "until 2027-06-30" in findings
+    assert "expired" in findings and "2025-06-30" in findings
+    assert "capacity_copy" in findings
+
+
+def test_per_feature_numbers_match_closed_form() -> None:
+    # Two features: VIF = 1/(1 - r^2), tolerance = 1 - r^2, auxiliary R^2 = r^2, SE inflation
+    # sqrt(VIF), and the standardised auxiliary coefficient on the other feature is r
+    # (common practice, no source); r from numpy.corrcoef as the outside reference.
+    rng = np.random.default_rng(21)
+    x = rng.normal(size=500)
+    frame = pd.DataFrame({"grid_load": x, "grid_load_lag": 0.8 * x + rng.normal(0, 0.5, 500)})
+    r = float(np.corrcoef(frame["grid_load"], frame["grid_load_lag"])[0, 1])
+    page = summary_html(check(frame, today=TODAY))
+    features = _text(_section(page, "features"))
+    vif = 1.0 / (1.0 - r * r)
+    for expected in (f"{vif:,.2f}", f"{1 - r * r:.4f}", f"{r * r:.4f}",
+                     f"\u00d7{math.sqrt(vif):.2f}", f"grid_load ({r:+.2f})"):
+        assert expected in features, expected
+
+
+def test_groups_get_gvif_rows_and_dependencies_read_as_equations(docks_page: str) -> None:
+    features = _text(_section(docks_page, "features"))
+    assert "weather_kind" in features and "group of 2 dummies" in features
+    deps = _text(_section(docks_page, "dependencies"))
+    assert "region_code is constant (7 in every used row)" in deps
+    assert re.search(r"capacity_copy = docks_total|docks_total = capacity_copy", deps)
+    three = re.search(r"(docks_\w+) = (docks_\w+) [+-] (docks_\w+)", deps)
+    assert three and {three.group(1), three.group(2), three.group(3)} == {
+        "docks_total", "docks_free", "docks_in_use"}
+
+
+def test_condition_table_marks_involved_proportions() -> None:
+    rng = np.random.default_rng(2)
+    x = rng.normal(size=400)
+    frame = pd.DataFrame({"meter_a": x, "meter_b": x + rng.normal(0, 0.02, 400),
+                          "tariff": rng.normal(size=400)})
+    verdict = check(frame, today=TODAY)
+    cond = verdict.diagnostics.condition
+    assert cond.indices[-1] > 30  # Belsley, Kuh & Welsch (1980) limit in the default policy
+    page = summary_html(verdict)
+    section = _section(page, "condition")
+    rows = re.findall(r"<tr>(.*?)</tr>", section[section.index("<tbody"):], re.S)
+    assert len(rows) == cond.indices.size
+    assert _text(rows[0]).count("\u25c6") == 2  # meter_a and meter_b, not tariff
+    assert all("\u25c6" not in _text(row) for row in rows[1:])  # indices below the limit
+
+
+def test_missing_counts_and_caution(docks_page: str) -> None:
+    missing = _text(_section(docks_page, "missing"))
+    assert re.search(r"wind_kmh\s+2\s", missing)
+    caution = _text(_section(docks_page, "caution"))
+    assert "credit, insurance, hiring" in caution and "model-risk policy" in caution
+
+
+def test_matrix_shown_for_small_designs_only(docks_page: str,
+                                             monkeypatch: pytest.MonkeyPatch,
+                                             docks_verdict: Verdict) -> None:
+    assert 'id="matrix"' in docks_page
+    monkeypatch.setattr(summary, "MAX_MATRIX_FEATURES", 3)
+    page = summary_html(docks_verdict)
+    assert 'id="matrix"' not in page
+    assert "at most 3 features" in _text(_section(page, "matrix"))
+
+
+def test_long_tables_are_capped_breaches_first(docks_verdict: Verdict,
+                                               monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(summary, "MAX_FEATURE_ROWS", 3)
+    page = summary_html(docks_verdict)
+    section = _section(page, "features")
+    body = section[section.index("<tbody"):]
+    rows = re.findall(r"<tr>(.*?)</tr>", body, re.S)
+    assert len(rows) == 3 and all("fail" in _text(row) for row in rows)
+    assert "more are hidden here. verdict.json lists all of them" in _text(section)
+
+
+def test_output_is_deterministic(docks_verdict: Verdict, docks_page: str) -> None:
+    assert summary_html(docks_verdict) == docks_page
+
+
+def test_pass_page(tmp_path: Path) -> None:
+    page = summary_html(check(make_clean_frame(), today=TODAY))
+    assert "PASS" in page[:page.index("<main>")]
+    assert "No findings" in _text(_section(page, "findings"))
+    assert "None: the design has full rank" in _text(_section(page, "dependencies"))
+
+
+def test_check_writes_summary_next_to_verdict(tmp_path: Path, run_cli: Any,
+                                              write_table: Any) -> None:
+    table = write_table(make_docks_frame(), "docks.parquet")
+    result = run_cli(["check", table, "--out", tmp_path / "out"])
+    assert result.code == 1
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["summary.html",
+                                                                     "verdict.json"]
+    page = (tmp_path / "out" / "summary.html").read_text(encoding="utf-8")
+    assert "docks.parquet" in page and "FAIL" in page
+
+
+def test_great_tables_is_imported_only_to_write_html() -> None:
+    code = ("import sys, gate, gate.cli, gate.outputs, gate.api; "
+            "print('great_tables' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stdout
+    assert out.strip() == "False"
+
+
+@pytest.mark.slow
+def test_wide_design_stays_small() -> None:
+    rng = np.random.default_rng(30)
+    rows, width = 700, 400
+    values = rng.normal(size=(rows, width))
+    for k in range(0, 20, 2):  # planted near-duplicates
+        values[:, k + 1] = values[:, k] + rng.normal(0, 0.05, rows)
+    frame = pd.DataFrame(values, columns=[f"sensor_{k:03d}" for k in range(width)])
+    verdict = check(frame, today=TODAY)
+    page = summary_html(verdict)
+    assert len(page.encode()) < 1_500_000
+    assert "Showing 250 of 400 features and groups" in _text(_section(page, "features"))
+    assert 'id="matrix"' not in page
