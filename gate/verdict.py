@@ -6,14 +6,16 @@ Arrays stay inside ``Diagnostics``; feature names are reattached here, once.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 from gate.design import Design
 from gate.diagnostics import GRAM_RESOLUTION, INTERCEPT, Diagnostics
 from gate.errors import GateFailed
 from gate.judge import INTERCEPT_NAME, Finding, Status, WaiverState, describe_dependency
+from gate.judge import status_of
 from gate.policy import Policy
+from gate.structural import StructuralTerm
 
 SCHEMA_VERSION = 1
 EXIT_CODES: dict[str, int] = {"pass": 0, "warn": 0, "fail": 1}
@@ -50,6 +52,8 @@ class Verdict:
     label: str | None
     created_at: str  # UTC, ISO 8601
     tool_version: str
+    structural: tuple[StructuralTerm, ...] = ()  # squares/products among breaching features
+    segments: tuple[SegmentVerdict, ...] = ()  # per-segment verdicts (policy `segments`)
 
     @property
     def exit_code(self) -> int:
@@ -72,6 +76,26 @@ class Verdict:
 
     def vif(self) -> dict[str, float | None]:
         return {name: _number(v) for name, v in zip(self.features, self.diagnostics.vif)}
+
+    def effective_rows(self) -> dict[str, float]:
+        """n / VIF per feature (n / GVIF^(1/df) per categorical column).
+
+        Var(b_j) = sigma^2 VIF_j / (n s_j^2): the coefficient is as precise as it would be with
+        n / VIF_j rows of uncorrelated features, and its standard error grows by sqrt(VIF_j).
+        0 for a feature in an exact dependency (its coefficient is not identified).
+        """
+        n = float(self.diagnostics.rows)
+        out = {name: _effective(n, float(v)) for name, v in zip(self.features,
+                                                                 self.diagnostics.vif)}
+        for group, result in zip(self.design.groups, self.diagnostics.groups):
+            out[group.column] = _effective(n, result.vif_scale)
+        return out
+
+    def with_segments(self, segments: tuple[SegmentVerdict, ...]) -> Verdict:
+        """This (whole-table) verdict plus one finding per segment; status = the worst."""
+        extra = tuple(segment.finding() for segment in segments)
+        findings = self.findings + extra
+        return replace(self, segments=segments, findings=findings, status=status_of(findings))
 
     def to_dict(self) -> dict[str, Any]:
         """The verdict.json document (interface v1 fields plus provenance)."""
@@ -141,6 +165,18 @@ class Verdict:
                 "rank_tolerance": d.rank_tolerance,
                 "gram_resolution": GRAM_RESOLUTION,
                 "route": d.route,
+                "effective_rows": {k: _number(v) for k, v in self.effective_rows().items()},
+                "se_inflation": {name: _number(math.sqrt(v)) if v >= 1 else None
+                                 for name, v in zip(names, d.vif.tolist())},
+                "structural": [
+                    {"feature": names[t.feature], "kind": t.kind,
+                     "parents": [names[k] for k in t.parents], "r": t.correlation,
+                     "sample_rows": t.sample_rows, "vif": _number(t.vif),
+                     "vif_centred": _number(t.vif_centred),
+                     "parent_vif": [_number(v) for v in t.parent_vif],
+                     "parent_vif_centred": [_number(v) for v in t.parent_vif_centred]}
+                    for t in self.structural
+                ],
             },
             "findings": [
                 {"rule": f.rule, "level": f.level, "features": list(f.features),
@@ -155,7 +191,72 @@ class Verdict:
                  "covered": w.covered}
                 for w in self.waivers
             ],
+            **({"segments": [s.to_dict() for s in self.segments]}
+               if self.segments or self.policy.segments is not None else {}),
         }
+
+
+def _effective(n: float, inflation: float) -> float:
+    if math.isinf(inflation):
+        return 0.0
+    return n / inflation if inflation >= 1.0 else math.nan
+
+
+@dataclass(frozen=True)
+class SegmentVerdict:
+    """One segment's verdict; ``verdict`` is None when the segment was reported, not judged."""
+
+    by: tuple[str, ...]
+    key: tuple[str | None, ...]
+    rows: int
+    rows_used: int
+    verdict: Verdict | None
+    reason: str | None = None
+
+    @property
+    def label(self) -> str:
+        return ", ".join(f"{c}={'(missing)' if v is None else v}"
+                         for c, v in zip(self.by, self.key))
+
+    @property
+    def judged(self) -> bool:
+        return self.verdict is not None
+
+    @property
+    def status(self) -> str:
+        return self.verdict.status if self.verdict is not None else "not_judged"
+
+    def finding(self) -> Finding:
+        """The whole-table finding that carries this segment's outcome."""
+        if self.verdict is None:
+            return Finding("segment", "info", (), float(self.rows_used), None,
+                           f"segment {self.label}: reported, not judged ({self.reason})")
+        active = [f for f in self.verdict.findings if not f.waived and f.level != "info"]
+        worst = [f for f in active if f.level == self.verdict.status]
+        level = "info" if self.verdict.status == "pass" else self.verdict.status
+        features = tuple(dict.fromkeys(x for f in worst for x in f.features))
+        counts = ", ".join(f"{sum(1 for f in active if f.level == lv)} {lv}"
+                           for lv in ("fail", "warn"))
+        first = f"; worst: {worst[0].message}" if worst else ""
+        return Finding("segment", level, features, None, None,
+                       f"segment {self.label} ({self.rows_used:,} rows): "
+                       f"{self.verdict.status} ({counts}){first}")
+
+    def to_dict(self) -> dict[str, Any]:
+        out: dict[str, Any] = {
+            "key": dict(zip(self.by, self.key)), "label": self.label, "status": self.status,
+            "judged": self.judged, "reason": self.reason, "rows": self.rows,
+            "rows_used": self.rows_used,
+        }
+        if self.verdict is not None:
+            inner = self.verdict.to_dict()
+            out["features"] = inner["features"]
+            out["findings"] = inner["findings"]
+            diagnostics = inner["diagnostics"]
+            out["diagnostics"] = {k: diagnostics[k] for k in (
+                "vif", "gvif", "effective_rows", "condition_number", "rank", "dependencies",
+                "pairs")}
+        return out
 
 
 def _number(value: float | None) -> float | None:
