@@ -71,8 +71,8 @@ class VerdictDiff:
 
     def lines(self) -> list[str]:
         arrow = "unchanged" if self.old_status == self.new_status else "changed"
-        out = [f"status: {self.old_status} -> {self.new_status} ({arrow}); NEW is "
-               f"{'WORSE' if self.worse else 'not worse'}"]
+        verdict = "WORSE" if self.worse else "not worse"
+        out = [f"status: {self.old_status} -> {self.new_status} ({arrow}); NEW is {verdict}"]
         for title, items in (("new findings", self.new_findings),
                              ("no longer waived", self.no_longer_waived),
                              ("resolved findings", self.resolved_findings)):

@@ -97,7 +97,7 @@ def test_page_is_self_contained(docks_page: str) -> None:
     assert f'<meta http-equiv="Content-Security-Policy" content="{CSP}">' in docks_page
     assert re.search(r"<title>[^<]+</title>", docks_page)
     assert not re.search(r"https?://", docks_page)
-    assert not re.search(r"@import|url\(|<link|<script|<iframe|<img", docks_page, re.I)
+    assert not re.search(r"@import|url\(|<link|<script|<iframe|<img", docks_page, re.IGNORECASE)
     parsed = _parse(docks_page)
     assert "script" not in parsed.tags and "img" not in parsed.tags
     assert len(parsed.ids) == len(set(parsed.ids)), "element ids must be unique"
@@ -173,7 +173,7 @@ def test_condition_table_marks_involved_proportions() -> None:
     assert cond.indices[-1] > 30  # Belsley, Kuh & Welsch (1980) limit in the default policy
     page = summary_html(verdict)
     section = _section(page, "condition")
-    rows = re.findall(r"<tr>(.*?)</tr>", section[section.index("<tbody"):], re.S)
+    rows = re.findall(r"<tr>(.*?)</tr>", section[section.index("<tbody"):], re.DOTALL)
     assert len(rows) == cond.indices.size
     assert _text(rows[0]).count("\u25c6") == 2  # meter_a and meter_b, not tariff
     assert all("\u25c6" not in _text(row) for row in rows[1:])  # indices below the limit
@@ -202,7 +202,7 @@ def test_long_tables_are_capped_breaches_first(docks_verdict: Verdict,
     page = summary_html(docks_verdict)
     section = _section(page, "features")
     body = section[section.index("<tbody"):]
-    rows = re.findall(r"<tr>(.*?)</tr>", body, re.S)
+    rows = re.findall(r"<tr>(.*?)</tr>", body, re.DOTALL)
     assert len(rows) == 3 and all("fail" in _text(row) for row in rows)
     assert "more are hidden here. verdict.json lists all of them" in _text(section)
 

@@ -59,7 +59,7 @@ def append_entry(path: str | Path, verdict: Verdict, verdict_sha256: str,
                  *, now: dt.datetime | None = None) -> dict[str, Any]:
     """Append one entry for ``verdict`` (whose verdict.json bytes hash to ``verdict_sha256``)."""
     file = Path(path)
-    moment = now or dt.datetime.now(dt.timezone.utc)
+    moment = now or dt.datetime.now(dt.UTC)
     try:
         if file.parent != Path():
             file.parent.mkdir(parents=True, exist_ok=True)
@@ -89,7 +89,7 @@ def append_entry(path: str | Path, verdict: Verdict, verdict_sha256: str,
             "status": verdict.status,
             "table": verdict.table.source,
             "table_sha256": verdict.table.sha256,
-            "time": moment.astimezone(dt.timezone.utc).isoformat(timespec="seconds"),
+            "time": moment.astimezone(dt.UTC).isoformat(timespec="seconds"),
             "tool_version": verdict.tool_version,
             "verdict_sha256": verdict_sha256,
         }
@@ -177,8 +177,8 @@ def verify_chain(path: str | Path, *, expected_head: str | None = None) -> Chain
     everywhere = {hashlib.sha256(line).hexdigest(): k for k, line in enumerate(lines, start=1)}
     hashes: dict[str, int] = {}  # the same, for the lines verified so far
     for number, line in enumerate(lines, start=1):
-        def bad(problem: str, at: int = number) -> ChainReport:
-            return ChainReport(name, number - 1, prev if number > 1 else None, at, problem)
+        def bad(problem: str, number: int = number, prev: str = prev) -> ChainReport:
+            return ChainReport(name, number - 1, prev if number > 1 else None, number, problem)
 
         if torn and number == len(lines):
             return bad("truncated: the last entry is incomplete (no line end), as a write "

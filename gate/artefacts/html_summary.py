@@ -268,8 +268,9 @@ def _verdict_section(verdict: Verdict) -> str:
     limit_text = " \u00b7 ".join([
         f"|r| \u2265 {limits.pairwise_correlation.max:g} ({limits.pairwise_correlation.level})",
         f"VIF > {limits.vif.max:g} ({limits.vif.level})",
-        f"condition index > {limits.condition_number.max:g} ({limits.condition_number.level}, "
-        f"{limits.condition_number.scaling.replace('_', '-')} scaling)",
+        (f"condition index > {limits.condition_number.max:g} "
+         f"({limits.condition_number.level}, "
+         f"{limits.condition_number.scaling.replace('_', '-')} scaling)"),
         f"rank deficiency ({limits.rank_deficiency.level})",
     ])
     items = [
@@ -279,8 +280,8 @@ def _verdict_section(verdict: Verdict) -> str:
         ("Policy", p.name + (f" ({p.source})" if p.source else "")),
         ("Policy sha256", p.sha256),
         ("Limits", limit_text),
-        ("Rows", f"{t.rows:,} read, {t.rows_used:,} used, {t.rows_dropped:,} dropped for "
-                 "missing values"),
+        ("Rows", (f"{t.rows:,} read, {t.rows_used:,} used, {t.rows_dropped:,} dropped for "
+                  "missing values")),
         ("Features", f"{len(verdict.features):,} design columns; rank {rank_text}"),
         ("Weight column", verdict.design.weight or "none"),
         ("Label", verdict.label or "none"),
