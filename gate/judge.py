@@ -96,7 +96,8 @@ def _vif_findings(d: Diagnostics, design: Design, policy: Policy) -> list[Findin
         helpers = ", ".join(f"{names[c]} ({b:+.2f})" for c, b in d.explained_by(k))
         message = (f"{names[k]}: VIF {vif:.3g} > {limit.max:g} (standard error x"
                    f"{math.sqrt(vif):.2f}, auxiliary R^2 {1 - 1 / vif:.4f})"
-                   + (f"; explained mostly by {helpers}" if helpers else ""))
+                   + (f"; explained mostly by {helpers}" if helpers else "")
+                   + _effective_rows_text(d.rows, vif))
         out.append(Finding("vif", _finding_level(limit.level), (names[k],), vif, limit.max, message))
     for group, result in zip(design.groups, d.groups):
         scaled = result.vif_scale
@@ -107,8 +108,15 @@ def _vif_findings(d: Diagnostics, design: Design, policy: Policy) -> list[Findin
         elif scaled > limit.max:
             out.append(Finding("vif", _finding_level(limit.level), (group.column,), scaled, limit.max,
                                f"{group.column} ({result.df} dummies): GVIF^(1/df) "
-                               f"{scaled:.3g} > {limit.max:g} (GVIF {result.gvif:.3g})"))
+                               f"{scaled:.3g} > {limit.max:g} (GVIF {result.gvif:.3g})"
+                               + _effective_rows_text(d.rows, scaled)))
     return out
+
+
+def _effective_rows_text(rows: int, inflation: float) -> str:
+    """Var(b_j) grows by VIF_j: the coefficient is as precise as with n / VIF_j rows."""
+    return (f"; its coefficient is as precise as with {rows / inflation:,.0f} of the {rows:,} "
+            "rows (n / VIF)")
 
 
 def _condition_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) -> list[Finding]:

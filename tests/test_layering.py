@@ -46,6 +46,9 @@ ORDER: list[str] = [
 #: Modules outside the core stages, each placed right after an ORDER entry (same rank).
 PLACED_AFTER: dict[str, str] = {
     "suggest": "api",  # remedies: reads diagnostics and verdicts, run by the CLI
+    "segments": "passes",  # one pass, one mergeable Gram per segment key
+    "structural": "passes",  # squares/products: reads a small sample; the verdict carries them
+    "sklearn": "api",  # optional scikit-learn step: runs gate.api.check on fit
     "schemas": "outputs",  # JSON Schemas of the policy and verdict documents
     "policy_template": "outputs",  # `gate policy init`
     "diffing": "outputs",  # `gate diff`: compares verdict.json documents
