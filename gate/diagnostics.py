@@ -244,6 +244,7 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
 
 def _correlation_block(comoment: FloatArray, columns: IntArray, scale: FloatArray) -> FloatArray:
     block = comoment[np.ix_(columns, columns)] / np.outer(scale, scale)
+    np.clip(block, -1.0, 1.0, out=block)  # |r| <= 1; rounding can land a duplicate at 1 + eps
     np.fill_diagonal(block, 1.0)
     return block
 
