@@ -7,50 +7,103 @@ read table -> design -> statistics (main pass, exact pass when needed) -> diagno
 from __future__ import annotations
 
 import datetime as dt
+import threading
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 
 from gate.design import Design, finish_design, plan_design
 from gate.diagnostics import Diagnostics, compute_diagnostics, plan_exact_pass
-from gate.errors import DesignError
+from gate.errors import DesignError, TableError
 from gate.judge import judge, status_of
-from gate.passes import exact_pass, main_pass
+from gate.passes import Engine, LocalEngine, ProgressFactory
 from gate.policy import Policy, load_policy, today_utc
-from gate.table import open_table
+from gate.table import DaskFrameSource, TableSource, open_table
 from gate.verdict import TableInfo, Verdict, tool_version
 
 
 def check(table: Any, policy: Policy | str | Path | None = None, *, label: str | None = None,
-          today: dt.date | None = None, chunk_rows: int | None = None) -> Verdict:
+          today: dt.date | None = None, chunk_rows: int | None = None,
+          engine: Literal["local", "dask"] | None = None, scheduler: Any = None,
+          progress: ProgressFactory | None = None) -> Verdict:
     """Check a feature table against a policy.
 
     Parameters
     ----------
-    table : path (Parquet file or folder, CSV, Feather/Arrow), pandas DataFrame or pyarrow Table
+    table : path (Parquet file or folder, CSV, Feather/Arrow), pandas DataFrame, pyarrow Table
+        or dask DataFrame
     policy : a :class:`Policy`, a path to a policy YAML file, or None for the packaged default
     label : free text carried into the verdict (e.g. a pipeline run id)
     today : the date waivers are judged against (default: today, UTC)
     chunk_rows : rows per chunk of the streaming passes (default: sized from the width)
+    engine : "local" (this process) or "dask" (partition statistics on a Dask cluster, merged
+        in a tree); default: "dask" for a dask DataFrame, else "local"
+    scheduler : with the Dask engine, a scheduler address or a ``distributed.Client``
+        (default: the current client, else a local cluster of 2 workers)
+    progress : builds a row counter per pass (the CLI's progress line); None for silence
     """
     policy = policy if isinstance(policy, Policy) else load_policy(policy)
     source = open_table(table)
-    plan = plan_design(source, policy)
-    full_gram, counts = main_pass(source, plan, chunk_rows=chunk_rows)
-    design = finish_design(plan, full_gram, counts)
-    gram = full_gram.select(np.asarray(design.selection, dtype=np.intp))
-    _check_rows(design, gram.rows, gram.weight_sum, source.name)
+    digest = _hash_in_background(source)
+    with _engine(source, engine, scheduler) as runner:
+        plan = plan_design(source, policy, distinct=runner.distinct_values)
+        full_gram, counts = runner.main_pass(source, plan, chunk_rows=chunk_rows,
+                                             progress=progress)
+        design = finish_design(plan, full_gram, counts)
+        gram = full_gram.select(np.asarray(design.selection, dtype=np.intp))
+        _check_rows(design, gram.rows, gram.weight_sum, source.name)
 
-    tolerance = policy.limits.rank_deficiency.tolerance
-    exact = plan_exact_pass(gram, tolerance=tolerance)
-    factor = exact_pass(source, plan, design.selection, exact, chunk_rows=chunk_rows) \
-        if exact.needs_exact_pass else None
+        tolerance = policy.limits.rank_deficiency.tolerance
+        exact = plan_exact_pass(gram, tolerance=tolerance)
+        factor = runner.exact_pass(source, plan, design.selection, exact,
+                                   chunk_rows=chunk_rows, progress=progress) \
+            if exact.needs_exact_pass else None
     diagnostics = compute_diagnostics(
         gram, exact, factor=factor, groups=tuple(g.indices for g in design.groups),
         scaling=policy.limits.condition_number.scaling)
     return build_verdict(diagnostics, design, policy, source_name=source.name,
-                         sha256=source.sha256(), label=label, today=today)
+                         sha256=digest(), label=label, today=today)
+
+
+def _engine(source: TableSource, engine: str | None, scheduler: Any) -> Engine:
+    if engine is None:
+        engine = "dask" if isinstance(source, DaskFrameSource) else "local"
+    if engine == "dask":
+        from gate.engine_dask import DaskEngine  # dask is optional: imported only here
+
+        return DaskEngine(scheduler)
+    if engine != "local":
+        raise ValueError(f"engine must be 'local' or 'dask', not {engine!r}")
+    if isinstance(source, DaskFrameSource):
+        raise TableError(f"{source.name}: a dask DataFrame needs engine='dask'")
+    return LocalEngine()
+
+
+def _hash_in_background(source: TableSource) -> Callable[[], str | None]:
+    """Start sha256 of the table's bytes on a thread (hashlib releases the GIL, so it runs
+    beside the main pass); the returned function waits for it."""
+    result: list[str | None] = []
+    failure: list[BaseException] = []
+
+    def run() -> None:
+        try:
+            result.append(source.sha256())
+        except BaseException as exc:  # noqa: BLE001 - re-raised in the caller's thread
+            failure.append(exc)
+
+    # A daemon thread: an early error elsewhere is reported without waiting for the hash.
+    worker = threading.Thread(target=run, name="gate-sha256", daemon=True)
+    worker.start()
+
+    def wait() -> str | None:
+        worker.join()
+        if failure:
+            raise failure[0]
+        return result[0]
+
+    return wait
 
 
 def build_verdict(diagnostics: Diagnostics, design: Design, policy: Policy, *,

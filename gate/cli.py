@@ -67,6 +67,14 @@ def build_parser() -> argparse.ArgumentParser:
                        help="stdout: a text summary (default) or the verdict.json document")
     check.add_argument("--quiet", action="store_true",
                        help="print nothing on stdout in text format (errors still go to stderr)")
+    check.add_argument("--engine", choices=("local", "dask"), default="local",
+                       help="where the passes run: this process (default) or a Dask cluster")
+    check.add_argument("--scheduler", metavar="ADDRESS",
+                       help="with --engine dask: scheduler address (default: a local cluster "
+                       "of 2 workers)")
+    check.add_argument("--full-matrices", action="store_true",
+                       help="also write matrices.npz (correlation, inverse correlation, VIF, "
+                       "condition indices, proportions, feature names) beside the verdict")
     check.set_defaults(handler=_run_check)
 
     demo = commands.add_parser("demo", help="run the gate on invented bike-share demo tables",
@@ -76,6 +84,7 @@ def build_parser() -> argparse.ArgumentParser:
                       help="folder for the demo tables and artefacts (default: gate-demo)")
     demo.set_defaults(handler=_run_demo)
     _add_artefact_commands(commands)
+    _add_remedy_commands(commands)
     return parser
 
 
@@ -132,9 +141,16 @@ def _run_check(args: argparse.Namespace) -> int:
     from gate.artefacts.terminal import summary_lines
     from gate.outputs import write_check_outputs
 
-    verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows)
+    from gate.progress import terminal_progress
+
+    if args.scheduler and args.engine != "dask":
+        raise GateError("--scheduler needs --engine dask; add --engine dask")
+    verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
+                    engine=args.engine, scheduler=args.scheduler,
+                    progress=None if args.quiet else terminal_progress)
     written = write_check_outputs(verdict, Path(args.out), junit=getattr(args, "junit", None),
-                                  audit_log=getattr(args, "audit_log", None))
+                                  audit_log=getattr(args, "audit_log", None),
+                                  full_matrices=args.full_matrices)
     if getattr(args, "format", "text") == "json":
         from gate.artefacts.verdict_json import verdict_json
 
@@ -212,3 +228,115 @@ def _run_demo(args: argparse.Namespace) -> int:
     from gate.demo import run_demo
 
     return run_demo(Path(args.out))
+
+
+def _add_remedy_commands(commands: Any) -> None:
+    """`gate suggest` (what to drop) and `gate check-files` (several tables, for commit hooks)."""
+    suggest = commands.add_parser(
+        "suggest", help="the smallest set of features to drop so every fail-level limit passes",
+        description="Check TABLE, then search the smallest set of features to drop (categorical "
+        "columns as a whole) so that every fail-level limit passes. Exact dependencies are "
+        "resolved first; an exact branch and bound runs when at most 20 features are flagged, "
+        "a greedy search with a stated lower bound otherwise. Exit 0 when a set is found, 1 "
+        "when no set passes (e.g. --keep forbids it), 2 on bad input.")
+    suggest.add_argument("table", metavar="TABLE",
+                         help=".parquet (file or folder), .csv, .feather/.arrow")
+    suggest.add_argument("--policy", metavar="FILE", help="policy YAML (default: packaged)")
+    suggest.add_argument("--keep", metavar="A,B", default="",
+                         help="comma-separated features (or categorical columns) never dropped")
+    suggest.add_argument("--prefer", metavar="FILE",
+                         help="features from most to least important, one per line; breaks "
+                         "ties (default: lowest loss of explained variance)")
+    suggest.add_argument("--write-policy", metavar="OUT",
+                         help="write a copy of the policy with the drops added to "
+                         "columns.exclude (atomically)")
+    suggest.add_argument("--method", choices=("auto", "exact", "greedy"), default="auto",
+                         help="search: auto (exact up to 20 candidates), exact, greedy")
+    suggest.add_argument("--chunk-rows", metavar="N", type=int,
+                         help="rows per chunk when streaming (default: sized from the width)")
+    suggest.add_argument("--format", choices=("text", "json"), default="text",
+                         help="stdout: the steps as text (default) or as JSON")
+    suggest.set_defaults(handler=_run_suggest)
+
+    files = commands.add_parser(
+        "check-files", help="check several tables (the commit-hook entry); exit = the worst",
+        description="Check each FILE against one policy, writing DIR/<file>/verdict.json and "
+        "summary.html. Exit 0 if all pass or warn, 1 if any fails, 2 if any is unusable.")
+    files.add_argument("files", metavar="FILE", nargs="*",
+                       help="tables (.parquet, .csv, .feather/.arrow)")
+    files.add_argument("--policy", metavar="FILE", help="policy YAML (default: packaged)")
+    files.add_argument("--out", metavar="DIR", default="gate-out",
+                       help="folder for one sub-folder of artefacts per table (default: gate-out)")
+    files.add_argument("--label", metavar="TEXT", help="free text carried into each verdict")
+    files.set_defaults(handler=_run_check_files)
+
+
+def _run_suggest(args: argparse.Namespace) -> int:
+    import json
+
+    from gate.api import check
+    from gate.artefacts.files import write_atomic
+    from gate.policy import load_policy, packaged_policy_path
+    from gate.suggest import (
+        policy_with_exclusions,
+        read_preference,
+        suggest,
+        suggestion_comment,
+    )
+
+    policy = load_policy(args.policy)
+    keep = [k.strip() for k in args.keep.split(",") if k.strip()]
+    prefer = read_preference(args.prefer) if args.prefer else None
+    verdict = check(args.table, policy, chunk_rows=args.chunk_rows)
+    result = suggest(verdict, keep=keep, prefer=prefer, method=args.method)
+    if args.format == "json":
+        sys.stdout.write(json.dumps(result.to_dict(), indent=2, allow_nan=False) + "\n")
+    else:
+        print(f"{verdict.status.upper()}  {verdict.table.source}  policy '{policy.name}'")
+        for line in result.lines():
+            print(line)
+    if args.write_policy and result.drops:
+        source = Path(args.policy) if args.policy else packaged_policy_path()
+        text = policy_with_exclusions(source.read_text(encoding="utf-8"), result.drops,
+                                      suggestion_comment(result, policy))
+        try:
+            written = write_atomic(args.write_policy, text)
+        except OSError as exc:
+            raise GateError(f"{args.write_policy}: cannot write the policy "
+                            f"({exc.strerror or exc}); choose a writable path") from None
+        if args.format != "json":
+            print(f"  wrote {written} (columns.exclude += {', '.join(result.drops)})")
+    elif args.write_policy and args.format != "json":
+        print("  nothing to exclude: --write-policy wrote no file")
+    return 0 if result.solved else 1
+
+
+def _run_check_files(args: argparse.Namespace) -> int:
+    from gate.api import check
+    from gate.outputs import write_check_outputs
+    from gate.policy import load_policy
+
+    policy = load_policy(args.policy)  # a bad policy is one error for every file: exit 2 now
+    worst = 0
+    used: set[str] = set()
+    for name in args.files:
+        folder = "".join(ch if ch.isalnum() or ch in "._-" else "_" for ch in name)
+        while folder in used:
+            folder += "_"
+        used.add(folder)
+        try:
+            verdict = check(name, policy, label=args.label)
+            written = write_check_outputs(verdict, Path(args.out) / folder)
+        except GateError as exc:  # this file is unusable; report it and check the others
+            print(f"gate: error: {exc}", file=sys.stderr)
+            worst = max(worst, EXIT_INPUT)
+            continue
+        fails = sum(1 for f in verdict.findings if f.level == "fail" and not f.waived)
+        print(f"{verdict.status.upper():4}  {name}  ({fails} fail finding"
+              f"{'s' if fails != 1 else ''}; {written[0].parent})")
+        if verdict.status == "fail":
+            for finding in [f for f in verdict.findings if f.level == "fail"
+                            and not f.waived][:3]:
+                print(f"      {finding.message}")
+        worst = max(worst, verdict.exit_code)
+    return worst

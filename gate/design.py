@@ -12,10 +12,11 @@ never becomes a spurious constant column.
 from __future__ import annotations
 
 import fnmatch
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
 import numpy as np
+from numpy.typing import NDArray
 import pyarrow as pa
 import pyarrow.compute as pc
 
@@ -70,7 +71,10 @@ class DesignPlan:
         if requested is not None:
             return max(1, requested)
         per_row = 8 * max(len(self.layout), 1)
-        return int(min(max(BLOCK_BYTES // per_row, 1024), 4 * DEFAULT_CHUNK_ROWS))
+        # At most DEFAULT_CHUNK_ROWS: the Parquet reader's own buffers grow with the batch
+        # (measured on 10M x 50, reading alone: 325 MB peak at 65,536 rows, 532 MB at 167,772)
+        # while the Gram update costs the same per row whatever the chunk.
+        return int(min(max(BLOCK_BYTES // per_row, 1024), DEFAULT_CHUNK_ROWS))
 
 
 @dataclass
@@ -115,8 +119,17 @@ class Design:
     notes: tuple[str, ...] = ()
 
 
-def plan_design(source: TableSource, policy: Policy) -> DesignPlan:
-    """Resolve column selection and types; read categorical levels."""
+#: (source, column names) -> distinct non-missing values of each, as text (the levels pass).
+DistinctValues = Callable[[TableSource, list[str]], dict[str, set[str]]]
+
+
+def plan_design(source: TableSource, policy: Policy, *,
+                distinct: DistinctValues | None = None) -> DesignPlan:
+    """Resolve column selection and types; read categorical levels.
+
+    ``distinct`` runs the levels pass (default: :func:`distinct_values`, in this process; the
+    Dask engine passes its own, which runs on the workers).
+    """
     spec = policy.columns
     columns = {c.name: c for c in source.columns}
     names = list(columns)
@@ -156,26 +169,43 @@ def plan_design(source: TableSource, policy: Policy) -> DesignPlan:
                           f"columns are: {_preview(names)}")
     to_encode = [n for n in selected
                  if n in spec.categorical or columns[n].kind == "categorical"]
-    levels = _read_levels(source, to_encode)
+    levels = _sorted_levels(source, (distinct or distinct_values)(source, to_encode))
     parts: list[str | Categorical] = [
         Categorical(n, levels[n]) if n in levels else n for n in selected
     ]
     return DesignPlan(source.name, tuple(parts), weight, policy.missing)
 
 
-def _read_levels(source: TableSource, names: list[str]) -> dict[str, tuple[str, ...]]:
-    if not names:
-        return {}
+#: Rows per chunk of the levels pass (only the categorical columns are read).
+LEVELS_CHUNK_ROWS = 1 << 20
+
+
+def distinct_values(source: TableSource, names: list[str]) -> dict[str, set[str]]:
+    """Distinct non-missing values (as text) of the named columns, in one cheap pass that reads
+    only those columns."""
     seen: dict[str, set[str]] = {n: set() for n in names}
-    for chunk in source.chunks(names, chunk_rows=1 << 20):
+    if not names:
+        return seen
+    for chunk in source.chunks(names, chunk_rows=LEVELS_CHUNK_ROWS):
         for name in names:
             values = pc.unique(_as_text(chunk.column(name)))
             seen[name].update(v for v in values.to_pylist() if v is not None)
-            if len(seen[name]) > MAX_LEVELS:
-                raise TableError(f"{source.name}: categorical column '{name}' has more than "
-                                 f"{MAX_LEVELS} distinct values; one-hot encoding it would add "
-                                 "that many features: exclude it or group its levels")
-    return {n: tuple(sorted(seen[n])) for n in names}
+            check_level_count(source.name, name, len(seen[name]))
+    return seen
+
+
+def check_level_count(table: str, name: str, count: int) -> None:
+    if count > MAX_LEVELS:
+        raise TableError(f"{table}: categorical column '{name}' has more than "
+                         f"{MAX_LEVELS} distinct values; one-hot encoding it would add "
+                         "that many features: exclude it or group its levels")
+
+
+def _sorted_levels(source: TableSource, seen: dict[str, set[str]]
+                   ) -> dict[str, tuple[str, ...]]:
+    for name, values in seen.items():
+        check_level_count(source.name, name, len(values))
+    return {n: tuple(sorted(values)) for n, values in seen.items()}
 
 
 def _as_text(column: pa.ChunkedArray | pa.Array) -> pa.ChunkedArray | pa.Array:
@@ -214,22 +244,22 @@ def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
     """One chunk -> (values over ``plan.layout``, weights or None, row counts)."""
     n = chunk.num_rows
     width = len(plan.layout)
-    values = np.zeros((n, width))
+    # Column-major: each feature is written contiguously and X'X on it is one BLAS call.
+    values = np.empty((width, n)).T
     missing_rows = np.zeros(n, dtype=bool)
     missing: dict[str, int] = {}
     position = 0
     for part in plan.parts:
         if isinstance(part, str):
-            column = _as_float(chunk.column(part))
-            values[:, position] = column
+            _fill_float(values[:, position], chunk.column(part))
             position += 1
         else:
-            codes = pc.index_in(_as_text(chunk.column(part.column)),
-                                value_set=pa.array(part.levels, pa.string()))
-            codes_np = codes.to_numpy(zero_copy_only=False)
-            present = ~np.isnan(codes_np) if codes_np.dtype.kind == "f" else np.ones(n, bool)
+            codes = _level_codes(chunk.column(part.column), part.levels, n)
+            present = codes >= 0
             rows = np.flatnonzero(present)
-            values[rows, position + codes_np[present].astype(np.intp)] = 1.0
+            dummies = values[:, position:position + len(part.levels)]
+            dummies[...] = 0.0
+            dummies[rows, codes[rows]] = 1.0
             absent = n - rows.size
             if absent:
                 missing[part.column] = absent
@@ -252,7 +282,8 @@ def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
 
     weights = None
     if plan.weight is not None:
-        weights = _as_float(chunk.column(plan.weight))
+        weights = np.empty(n)
+        _fill_float(weights, chunk.column(plan.weight))
         _check_weights(plan, weights, first_row)
 
     if missing:
@@ -270,10 +301,61 @@ def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
     return values, weights, counts
 
 
-def _as_float(column: pa.ChunkedArray) -> FloatArray:
-    if not pa.types.is_floating(column.type) or column.type != pa.float64():
-        column = pc.cast(column, pa.float64())
-    return np.asarray(column.to_numpy(), dtype=np.float64)
+def _fill_float(out: FloatArray, column: pa.ChunkedArray) -> None:
+    """Write a numeric/boolean column into ``out`` as float64, NaN where missing.
+
+    Reads the Arrow buffers directly: no copy for float64 without nulls, and no call into
+    pyarrow's pandas shim (``to_numpy`` and Python-scalar arguments import pandas, ~0.9 s).
+    """
+    start = 0
+    for array in column.chunks:
+        if array.type != pa.float64():
+            array = pc.cast(array, pa.float64())
+        size = len(array)
+        target = out[start:start + size]
+        start += size
+        validity, data = array.buffers()[:2]
+        if data is None:  # an all-null column
+            target[...] = np.nan
+            continue
+        offset = array.offset
+        target[...] = np.frombuffer(data, dtype=np.float64, count=offset + size)[offset:]
+        if array.null_count:
+            target[~_valid_mask(validity, offset, size)] = np.nan
+
+
+def _valid_mask(validity: pa.Buffer, offset: int, size: int) -> NDArray[np.bool_]:
+    """Arrow's validity bitmap (least significant bit first) as a boolean array."""
+    bits = np.unpackbits(np.frombuffer(validity, dtype=np.uint8), count=offset + size,
+                         bitorder="little")
+    return bits[offset:].astype(bool)
+
+
+def _level_codes(column: pa.ChunkedArray, levels: tuple[str, ...], n: int
+                 ) -> NDArray[np.intp]:
+    """Position of each value among ``levels`` (sorted text); -1 where missing or unknown."""
+    lookup = {level: k for k, level in enumerate(levels)}
+    codes = np.empty(n, dtype=np.intp)
+    start = 0
+    for array in column.chunks:
+        size = len(array)
+        encoded = array if pa.types.is_dictionary(array.type) else pc.dictionary_encode(
+            _as_text(array))
+        dictionary = _as_text(encoded.dictionary).to_pylist()
+        table = np.array([lookup.get(v, -1) if v is not None else -1 for v in dictionary] + [-1],
+                         dtype=np.intp)
+        indices = encoded.indices
+        validity, data = indices.buffers()[:2]
+        offset = indices.offset
+        index_type = np.dtype(f"{'i' if pa.types.is_signed_integer(indices.type) else 'u'}"
+                              f"{indices.type.bit_width // 8}")
+        positions = np.frombuffer(data, dtype=index_type, count=offset + size)[offset:] \
+            .astype(np.intp)
+        if indices.null_count:
+            positions[~_valid_mask(validity, offset, size)] = len(dictionary)  # -> -1
+        codes[start:start + size] = table[positions]
+        start += size
+    return codes
 
 
 def _check_weights(plan: DesignPlan, weights: FloatArray, first_row: int) -> None:

@@ -12,8 +12,8 @@ from gate.verdict import Verdict
 
 
 def write_check_outputs(verdict: Verdict, out_dir: Path, *, html: bool = True,
-                        junit: Path | None = None, audit_log: Path | None = None
-                        ) -> list[Path]:
+                        junit: Path | None = None, audit_log: Path | None = None,
+                        full_matrices: bool = False) -> list[Path]:
     """Write DIR/verdict.json and DIR/summary.html (atomically), and the JUnit XML file and
     audit-log entry when asked; return the paths written.
 
@@ -27,6 +27,10 @@ def write_check_outputs(verdict: Verdict, out_dir: Path, *, html: bool = True,
             from gate.artefacts.html_summary import write_summary_html
 
             written.append(write_summary_html(verdict, out_dir / "summary.html"))
+        if full_matrices:
+            from gate.artefacts.matrices import write_matrices_npz
+
+            written.append(write_matrices_npz(verdict, out_dir / "matrices.npz"))
     except OutputError:
         raise
     except OSError as exc:

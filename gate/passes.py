@@ -1,43 +1,124 @@
-"""The local engine: run the main pass (and, when planned, the exact pass) over a table.
+"""The local engine: run the passes over a table in this process.
 
 Each pass reads the table in chunks, encodes each chunk and folds it into a mergeable
-statistic, so peak memory is one chunk plus O(p^2) whatever the number of rows.
+statistic, so peak memory is one chunk plus O(p^2) whatever the number of rows. The Dask
+engine (``gate.engine_dask``) offers the same three methods and runs them on a cluster.
 """
 
 from __future__ import annotations
 
-from gate.design import DesignPlan, InfiniteValuesError, RowCounts, count_infinite, encode_block
+from collections.abc import Callable
+from types import TracebackType
+from typing import Protocol
+
+from gate.design import (
+    DesignPlan,
+    InfiniteValuesError,
+    RowCounts,
+    count_infinite,
+    distinct_values,
+    encode_block,
+)
 from gate.diagnostics import ExactPassPlan, exact_pass_block
 from gate.statistics import CentredGram, TriangularFactor
 from gate.table import TableSource
 
 
-def main_pass(source: TableSource, plan: DesignPlan, *, chunk_rows: int | None = None
-              ) -> tuple[CentredGram, RowCounts]:
+class RowCounter(Protocol):
+    """What the passes report progress to (``gate.progress.RowProgress``)."""
+
+    def advance(self, rows: int) -> None: ...
+
+    def finish(self) -> None: ...
+
+
+#: (label, expected rows or None) -> a counter for one pass.
+ProgressFactory = Callable[[str, "int | None"], RowCounter]
+
+
+class Engine(Protocol):
+    """Runs the passes over a source: the local engine below, or the Dask engine."""
+
+    def __enter__(self) -> Engine: ...
+
+    def __exit__(self, kind: type[BaseException] | None, exc: BaseException | None,
+                 tb: TracebackType | None) -> None: ...
+
+    def distinct_values(self, source: TableSource, names: list[str]) -> dict[str, set[str]]: ...
+
+    def main_pass(self, source: TableSource, plan: DesignPlan, *, chunk_rows: int | None = None,
+                  progress: ProgressFactory | None = None) -> tuple[CentredGram, RowCounts]: ...
+
+    def exact_pass(self, source: TableSource, plan: DesignPlan, selection: tuple[int, ...],
+                   exact: ExactPassPlan, *, chunk_rows: int | None = None,
+                   progress: ProgressFactory | None = None) -> TriangularFactor: ...
+
+
+class LocalEngine:
+    """The passes in this process (the default)."""
+
+    def __enter__(self) -> LocalEngine:
+        return self
+
+    def __exit__(self, kind: type[BaseException] | None, exc: BaseException | None,
+                 tb: TracebackType | None) -> None:
+        return None
+
+    def distinct_values(self, source: TableSource, names: list[str]) -> dict[str, set[str]]:
+        return distinct_values(source, names)
+
+    def main_pass(self, source: TableSource, plan: DesignPlan, *, chunk_rows: int | None = None,
+                  progress: ProgressFactory | None = None) -> tuple[CentredGram, RowCounts]:
+        return main_pass(source, plan, chunk_rows=chunk_rows, progress=progress)
+
+    def exact_pass(self, source: TableSource, plan: DesignPlan, selection: tuple[int, ...],
+                   exact: ExactPassPlan, *, chunk_rows: int | None = None,
+                   progress: ProgressFactory | None = None) -> TriangularFactor:
+        return exact_pass(source, plan, selection, exact, chunk_rows=chunk_rows,
+                          progress=progress)
+
+
+def main_pass(source: TableSource, plan: DesignPlan, *, chunk_rows: int | None = None,
+              progress: ProgressFactory | None = None) -> tuple[CentredGram, RowCounts]:
     """Centred Gram over the accumulation layout, and the row counts."""
     gram = CentredGram.empty(len(plan.layout))
     counts = RowCounts()
-    chunks = iter(source.chunks(plan.read_columns, plan.chunk_rows(chunk_rows)))
-    for chunk in chunks:
-        try:
-            values, weights, chunk_counts = encode_block(plan, chunk, first_row=counts.read)
-        except InfiniteValuesError as exc:
-            # Read on (this column only) so the message gives the whole table's count.
-            total = exc.count + sum(count_infinite(rest, exc.column) for rest in chunks)
-            raise exc.with_total(total) from None
-        gram = gram.merge(CentredGram.from_block(values, weights))
-        counts = counts.add(chunk_counts)
+    counter = progress("reading rows", source.row_count) if progress else None
+    try:
+        chunks = iter(source.chunks(plan.read_columns, plan.chunk_rows(chunk_rows)))
+        for chunk in chunks:
+            try:
+                values, weights, chunk_counts = encode_block(plan, chunk, first_row=counts.read)
+            except InfiniteValuesError as exc:
+                # Read on (this column only) so the message gives the whole table's count.
+                total = exc.count + sum(count_infinite(rest, exc.column) for rest in chunks)
+                raise exc.with_total(total) from None
+            gram = gram.merge(CentredGram.from_block(values, weights, overwrite=True))
+            counts = counts.add(chunk_counts)
+            if counter:
+                counter.advance(chunk_counts.read)
+    finally:
+        if counter:
+            counter.finish()
     return gram, counts
 
 
 def exact_pass(source: TableSource, plan: DesignPlan, selection: tuple[int, ...],
-               exact: ExactPassPlan, *, chunk_rows: int | None = None) -> TriangularFactor:
+               exact: ExactPassPlan, *, chunk_rows: int | None = None,
+               progress: ProgressFactory | None = None) -> TriangularFactor:
     """TSQR factor of the centred, scaled rows over the columns the Gram could not settle."""
     factor = TriangularFactor.empty(exact.columns.size)
     read = 0
-    for chunk in source.chunks(plan.read_columns, plan.chunk_rows(chunk_rows)):
-        values, weights, chunk_counts = encode_block(plan, chunk, first_row=read)
-        read += chunk_counts.read
-        block = exact_pass_block(exact, values[:, list(selection)], weights)
-        factor = factor.merge(TriangularFactor.from_block(block))
+    counter = progress("exact pass", source.row_count) if progress else None
+    try:
+        for chunk in source.chunks(plan.read_columns, plan.chunk_rows(chunk_rows)):
+            values, weights, chunk_counts = encode_block(plan, chunk, first_row=read)
+            read += chunk_counts.read
+            block = exact_pass_block(exact, values[:, list(selection)], weights)
+            factor = factor.merge(TriangularFactor.from_block(block))
+            if counter:
+                counter.advance(chunk_counts.read)
+    finally:
+        if counter:
+            counter.finish()
     return factor

@@ -43,20 +43,26 @@ class CentredGram:
         return cls(0, 0.0, np.zeros(p), np.zeros((p, p)))
 
     @classmethod
-    def from_block(cls, values: FloatArray, weights: FloatArray | None = None) -> CentredGram:
-        """Statistics of one block (n x p, finite values; weights >= 0 or None)."""
+    def from_block(cls, values: FloatArray, weights: FloatArray | None = None, *,
+                   overwrite: bool = False) -> CentredGram:
+        """Statistics of one block (n x p, finite values; weights >= 0 or None).
+
+        ``overwrite=True`` centres ``values`` in place (the passes own their blocks), which
+        saves allocating and first-touching a second block per chunk.
+        """
         n, p = values.shape
         if weights is None:
             if n == 0:
                 return cls.empty(p)
             mean = values.mean(axis=0)
-            centred = values - mean
+            centred = np.subtract(values, mean, out=values if overwrite else None)
             return cls(n, float(n), mean, centred.T @ centred)
         total = float(weights.sum())
         if total <= 0.0:
             return cls.empty(p)
         mean = (weights @ values) / total
-        centred = (values - mean) * np.sqrt(weights)[:, None]
+        centred = np.subtract(values, mean, out=values if overwrite else None)
+        centred *= np.sqrt(weights)[:, None]
         return cls(int(np.count_nonzero(weights > 0)), total, mean, centred.T @ centred)
 
     def merge(self, other: CentredGram) -> CentredGram:

@@ -1,9 +1,14 @@
 """Reading feature tables: Parquet (file or folder), CSV, Arrow IPC/Feather, or a DataFrame.
 
 Every source yields pyarrow tables in chunks of rows, so nothing downstream depends on the
-file format and memory stays bounded by the chunk size. Parquet is read one row group at a time
-(``iter_batches`` was measured to let memory grow towards the file size). pandas is imported only
-when a DataFrame is passed in. No column logic lives here.
+file format and memory stays bounded by the chunk size. Parquet is read one row group at a time,
+and within a row group in batches of ``chunk_rows`` through a buffered stream without
+pre-buffering: pyarrow's defaults (``pre_buffer=True``, unbuffered column chunks) hold a whole
+row group's column chunks in memory -- about the file size for one-row-group files; measured on
+1M x 100 (one 800 MB row group): 1.7 GB peak reading the row group whole, 1.3 GB with
+``iter_batches`` and the defaults, 0.52 GB with ``pre_buffer=False, buffer_size=256 KiB``, at
+the same speed. pandas is imported only when a DataFrame is passed in. No column logic lives
+here.
 """
 
 from __future__ import annotations
@@ -20,6 +25,8 @@ from gate.errors import TableError
 
 ColumnKind = Literal["numeric", "boolean", "categorical", "datetime", "other"]
 DEFAULT_CHUNK_ROWS = 65_536
+#: Read-buffer per column chunk when streaming Parquet (see the module docstring).
+PARQUET_BUFFER_BYTES = 1 << 18
 SUFFIXES = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv", ".feather": "arrow",
             ".arrow": "arrow", ".ipc": "arrow"}
 
@@ -98,7 +105,8 @@ class ParquetSource:
             raise TableError(f"{path}: folder holds no .parquet files; point TABLE at a file "
                              "or a folder of Parquet files")
         try:
-            self._files = [pq.ParquetFile(f) for f in files]
+            self._files = [pq.ParquetFile(f, pre_buffer=False, buffer_size=PARQUET_BUFFER_BYTES)
+                           for f in files]
         except (pa.ArrowException, OSError) as exc:
             raise TableError(f"{path}: not a readable Parquet file ({_first_line(exc)})") from None
         self._paths = files
@@ -123,14 +131,15 @@ class ParquetSource:
                ) -> Iterator[pa.Table]:
         for file, path in zip(self._files, self._paths):
             for group in range(file.metadata.num_row_groups):
+                # Batches of one row group at a time: a huge row group never sits in memory.
+                batches = file.iter_batches(batch_size=chunk_rows, row_groups=[group],
+                                            columns=list(columns), use_threads=True)
                 try:
-                    table = file.read_row_group(group, columns=list(columns))
+                    for batch in batches:
+                        yield pa.Table.from_batches([batch])
                 except (pa.ArrowException, OSError) as exc:
                     raise TableError(f"{path}: row group {group} unreadable "
                                      f"({_first_line(exc)})") from None
-                # A huge row group is still cut so that the design blocks stay bounded.
-                for start in range(0, max(table.num_rows, 1), chunk_rows):
-                    yield table.slice(start, chunk_rows)
 
 
 class CsvSource:
@@ -257,6 +266,44 @@ class ArrowTableSource:
             yield table.slice(start, chunk_rows)
 
 
+class DaskFrameSource:
+    """A dask DataFrame: read partition by partition (no dask import here; duck-typed).
+
+    The Dask engine (``gate.engine_dask``) computes each partition's statistics on the
+    workers; :meth:`chunks` (partitions computed one at a time in this process) is the
+    fallback that keeps this a plain :class:`TableSource`.
+    """
+
+    def __init__(self, frame: Any, name: str = "<dask DataFrame>") -> None:
+        self.name = name
+        self.frame = frame
+        try:
+            self._schema = pa.Schema.from_pandas(frame._meta, preserve_index=False)
+        except (pa.ArrowException, TypeError, ValueError) as exc:
+            raise TableError(f"{name}: cannot read the dask DataFrame's column types "
+                             f"({_first_line(exc)}); give each column one type") from None
+
+    @property
+    def columns(self) -> tuple[Column, ...]:
+        return _schema_columns(self._schema)
+
+    @property
+    def row_count(self) -> None:
+        return None  # counting would compute the whole frame
+
+    def sha256(self) -> None:
+        return None
+
+    def partitions(self) -> list[Any]:
+        """One delayed pandas DataFrame per partition."""
+        return list(self.frame.to_delayed())
+
+    def chunks(self, columns: Sequence[str], chunk_rows: int = DEFAULT_CHUNK_ROWS
+               ) -> Iterator[pa.Table]:
+        for part in self.partitions():
+            yield from from_dataframe(part.compute(), self.name).chunks(columns, chunk_rows)
+
+
 def from_dataframe(frame: Any, name: str = "<DataFrame>") -> ArrowTableSource:
     """A pandas DataFrame as a source. Object columns of strings become categorical."""
     try:
@@ -275,10 +322,12 @@ def open_table(table: Any) -> TableSource:
         return ArrowTableSource(table, "<pyarrow.Table>")
     if type(table).__module__.startswith("pandas") and hasattr(table, "columns"):
         return from_dataframe(table)
+    if type(table).__module__.startswith("dask") and hasattr(table, "to_delayed"):
+        return DaskFrameSource(table)
     if hasattr(table, "chunks") and hasattr(table, "columns"):
         return table  # type: ignore[no-any-return]
     raise TableError(f"cannot read a {type(table).__name__} as a table; pass a file path, "
-                     "a pandas DataFrame or a pyarrow Table")
+                     "a pandas DataFrame, a pyarrow Table or a dask DataFrame")
 
 
 def open_path(path: Path) -> TableSource:

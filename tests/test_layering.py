@@ -52,6 +52,9 @@ PLACED_AFTER: dict[str, str] = {
     "schemas": "outputs",  # JSON Schemas of the policy and verdict documents
     "policy_template": "outputs",  # `gate policy init`
     "diffing": "outputs",  # `gate diff`: compares verdict.json documents
+    "progress": "passes",  # the progress line the passes report rows to (no gate imports)
+    "engine_dask": "passes",  # the Dask engine: same passes on a cluster (optional extra)
+    "bench": "cli",  # `python -m gate.bench`: times `gate check` against the floor
 }
 
 
