@@ -36,6 +36,7 @@ ORDER: list[str] = [
     "artefacts.*",
     "outputs",
     "examples",
+    "examples.bike_share_demand",  # the invented demo data; other examples build on it
     "examples.*",
     "demo",
     "cli",
