@@ -1,0 +1,321 @@
+"""gate suggest: smallest drop sets, exact vs greedy, keep/prefer, dependencies, policy rewrite.
+
+References: brute force over every subset with numpy's inverse of the sample correlation matrix
+(VIF_j = [C^-1]_jj, numerics.md), and the gate itself re-run on the rewritten policy.
+"""
+
+from __future__ import annotations
+
+import itertools
+from collections.abc import Callable, Sequence
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from gate.api import check
+from gate.errors import DesignError
+from gate.policy import Policy, load_policy, parse_policy
+from gate.suggest import escape_glob, policy_with_exclusions, suggest
+
+SEED = 20261202
+VIF_ONLY = Policy.model_validate({"name": "vif-only", "limits": {
+    "vif": {"max": 5.0, "level": "fail"}, "pairwise_correlation": {"level": "off"},
+    "condition_number": {"level": "off"}}})
+
+
+def frame_with_covariance(cov: np.ndarray, names: Sequence[str], rows: int = 400,
+                          seed: int = SEED) -> pd.DataFrame:
+    """Invented rows whose sample covariance is exactly ``cov`` (whitened, then coloured)."""
+    rng = np.random.default_rng(seed)
+    z = rng.normal(size=(rows, len(names)))
+    z -= z.mean(axis=0)
+    q, _ = np.linalg.qr(z)  # orthonormal columns, each with zero mean
+    return pd.DataFrame(q * np.sqrt(rows - 1) @ np.linalg.cholesky(cov).T, columns=list(names))
+
+
+def vifs(corr: np.ndarray) -> np.ndarray:
+    return np.diag(np.linalg.inv(corr))
+
+
+def feasible(corr: np.ndarray, keep: list[int], limit: float = 5.0) -> bool:
+    return not keep or bool(vifs(corr[np.ix_(keep, keep)]).max() <= limit)
+
+
+def brute_force_minimum(corr: np.ndarray, limit: float = 5.0) -> list[tuple[int, ...]]:
+    """Every minimum-size drop set (reference: numpy inverse on each subset)."""
+    p = corr.shape[0]
+    for size in range(p + 1):
+        hits = [drop for drop in itertools.combinations(range(p), size)
+                if feasible(corr, [j for j in range(p) if j not in drop], limit)]
+        if hits:
+            return hits
+    return []
+
+
+def plain_greedy(corr: np.ndarray, limit: float = 5.0) -> list[int]:
+    """The textbook rule: drop the highest VIF until every VIF is at most the limit."""
+    kept = list(range(corr.shape[0]))
+    dropped: list[int] = []
+    while True:
+        v = vifs(corr[np.ix_(kept, kept)])
+        if v.max() <= limit:
+            return dropped
+        dropped.append(kept.pop(int(np.argmax(v))))
+
+
+# Crafted structure (invented bike-share features over two latent drivers, air temperature T and
+# station activity A, unit variance each):
+#   feels_like_c  = T + e (var 0.30)        temp_c        = T + e (var 0.05)
+#   docks_in_use  = A + e (var 0.10)        comfort_score = T + 0.25 A + e (var 0.50)
+#   demand_index  = 0.5 T + A + e (var 0.10)
+# demand_index has the highest VIF, but dropping it leaves temp_c above 5; dropping docks_in_use
+# alone brings every VIF under 5. Greedy needs two drops, the optimum one.
+CRAFTED_NAMES = ("feels_like_c", "docks_in_use", "temp_c", "comfort_score", "demand_index")
+LOADINGS = np.array([[1, 0], [0, 1], [1, 0], [1, 0.25], [0.5, 1]])
+NOISE = np.array([0.30, 0.10, 0.05, 0.50, 0.10])
+
+
+@pytest.fixture
+def crafted() -> pd.DataFrame:
+    return frame_with_covariance(LOADINGS @ LOADINGS.T + np.diag(NOISE), CRAFTED_NAMES)
+
+
+def test_exact_search_beats_greedy_on_crafted_structure(crafted: pd.DataFrame) -> None:
+    corr = np.corrcoef(crafted.to_numpy(), rowvar=False)
+    # the construction does what it claims (numpy reference)
+    minimum = brute_force_minimum(corr)
+    assert [tuple(CRAFTED_NAMES[j] for j in d) for d in minimum] == [("docks_in_use",)]
+    assert [CRAFTED_NAMES[j] for j in plain_greedy(corr)] == ["demand_index", "temp_c"]
+
+    verdict = check(crafted, VIF_ONLY)
+    assert verdict.status == "fail"
+    exact = suggest(verdict, method="exact")
+    greedy = suggest(verdict, method="greedy")
+    assert exact.drops == ("docks_in_use",) and exact.exhaustive and exact.solved
+    assert set(greedy.drops) == {"demand_index", "temp_c"} and greedy.solved
+    assert len(exact.drops) < len(greedy.drops)
+    assert greedy.lower_bound <= len(exact.drops)
+    assert suggest(verdict).method == "exact"  # 5 candidates <= 20: auto is exact
+    # the step report shows the VIF falling under the limit
+    step = exact.steps[0]
+    assert step.max_vif_before > 5.0 >= step.max_vif_after
+    assert step.condition_before is not None and step.condition_after is not None
+    assert check(crafted.drop(columns=list(exact.drops)), VIF_ONLY).status == "pass"
+
+
+def test_keep_is_never_dropped(crafted: pd.DataFrame) -> None:
+    verdict = check(crafted, VIF_ONLY)
+    result = suggest(verdict, keep=["docks_in_use"])
+    assert "docks_in_use" not in result.drops and result.solved
+    corr = np.corrcoef(crafted.to_numpy(), rowvar=False)
+    # reference: the smallest sets that keep docks_in_use have two members
+    p = len(CRAFTED_NAMES)
+    keeping = [d for size in range(p + 1) for d in itertools.combinations(range(p), size)
+               if 1 not in d and feasible(corr, [j for j in range(p) if j not in d])]
+    assert len(result.drops) == min(len(d) for d in keeping) == 2
+    assert check(crafted.drop(columns=list(result.drops)), VIF_ONLY).status == "pass"
+
+
+def near_pair_frame(rows: int = 500) -> pd.DataFrame:
+    """Invented: station_load and dock_pressure are near-duplicates; humidity is unrelated."""
+    rng = np.random.default_rng(SEED)
+    load = rng.normal(size=rows)
+    return pd.DataFrame({"station_load": load,
+                         "dock_pressure": load + rng.normal(0, 0.05, rows),
+                         "humidity_pct": rng.normal(60, 10, rows)})
+
+
+def test_preference_order_decides_ties() -> None:
+    frame = near_pair_frame()
+    verdict = check(frame, VIF_ONLY)
+    first = suggest(verdict, prefer=["station_load", "dock_pressure"])
+    second = suggest(verdict, prefer=["dock_pressure", "station_load"])
+    assert first.drops == ("dock_pressure",)
+    assert second.drops == ("station_load",)
+    # a listed feature outranks an unlisted one: unlisted count as least important
+    only = suggest(verdict, prefer=["dock_pressure"])
+    assert only.drops == ("station_load",)
+
+
+def schur_trace(corr: np.ndarray, drop: tuple[int, ...]) -> float:
+    """trace(C_DD - C_DK C_KK^-1 C_KD) by numpy's solve (the documented loss)."""
+    kept = [j for j in range(corr.shape[0]) if j not in drop]
+    d = list(drop)
+    c_kd = corr[np.ix_(kept, d)]
+    return float(np.trace(corr[np.ix_(d, d)] - c_kd.T @ np.linalg.solve(
+        corr[np.ix_(kept, kept)], c_kd)))
+
+
+def test_without_preference_lowest_loss_of_explained_variance_wins() -> None:
+    # four related temperature readings: several minimum drop sets, their losses differ.
+    rng = np.random.default_rng(SEED + 1)
+    base = rng.normal(size=800)
+    frame = pd.DataFrame({"temp_c": base + rng.normal(0, 0.10, 800),
+                          "feels_like_c": base + rng.normal(0, 0.15, 800),
+                          "ground_temp_c": base + rng.normal(0, 0.40, 800),
+                          "humidity_pct": rng.normal(60, 10, 800)})
+    corr = np.corrcoef(frame.to_numpy(), rowvar=False)
+    valid = brute_force_minimum(corr)
+    assert len(valid) > 1  # a real tie on size
+    losses = {d: schur_trace(corr, d) for d in valid}
+    expected = min(losses, key=losses.__getitem__)
+    result = suggest(check(frame, VIF_ONLY))
+    assert set(result.drops) == {frame.columns[j] for j in expected}
+    assert result.loss == pytest.approx(losses[expected], rel=1e-9)
+    if len(expected) == 1:  # a single drop's loss is 1 / VIF_j in the full design
+        assert result.loss == pytest.approx(1.0 / vifs(corr)[expected[0]], rel=1e-9)
+
+
+def test_exact_dependencies_first_one_column_each(docks_frame: pd.DataFrame) -> None:
+    policy = parse_policy("policy_version: 1\nname: t\ncolumns:\n  categorical: [weather_kind]\n")
+    verdict = check(docks_frame, policy)
+    dependencies = len(verdict.diagnostics.dependencies)
+    result = suggest(verdict)
+    by_dependency = [s for s in result.steps if s.reason.startswith("exact dependency")]
+    assert len(by_dependency) == dependencies
+    assert "region_code" in result.drops  # the constant has only itself to drop
+    assert result.solved
+    after = check(docks_frame.drop(columns=list(result.drops)), policy)
+    assert after.diagnostics.dependencies == () and after.status != "fail"
+
+
+def test_categorical_group_drops_as_a_whole() -> None:
+    rng = np.random.default_rng(SEED + 2)
+    kinds = rng.choice(["clear", "rain", "snow"], 600)
+    frame = pd.DataFrame({"weather_kind": kinds,
+                          "is_rain": (kinds == "rain").astype(float),
+                          "temp_c": rng.normal(12, 5, 600)})
+    verdict = check(frame, VIF_ONLY)
+    result = suggest(verdict, keep=["is_rain"])
+    assert result.drops == ("weather_kind",)
+    assert not any(name.startswith("weather_kind=") for name in result.kept)
+    with pytest.raises(DesignError, match="categorical column 'weather_kind'"):
+        suggest(verdict, keep=["weather_kind=rain"])
+    with pytest.raises(DesignError, match="not a feature"):
+        suggest(verdict, keep=["no_such_feature"])
+
+
+def many_pairs_frame(pairs: int = 11, rows: int = 600) -> pd.DataFrame:
+    rng = np.random.default_rng(SEED + 3)
+    columns: dict[str, np.ndarray] = {}
+    for k in range(pairs):
+        base = rng.normal(size=rows)
+        columns[f"dock_{k}_free"] = base
+        columns[f"dock_{k}_free_lagged"] = base + rng.normal(0, 0.05, rows)
+    return pd.DataFrame(columns)
+
+
+def test_greedy_above_the_exact_limit_states_a_bound() -> None:
+    frame = many_pairs_frame()
+    policy = Policy.model_validate({"name": "pairs", "limits": {
+        "vif": {"max": 5.0, "level": "fail"},
+        "pairwise_correlation": {"max": 0.9, "level": "fail"},
+        "condition_number": {"level": "off"}}})
+    verdict = check(frame, policy)
+    result = suggest(verdict)
+    assert len(result.candidates) == 22 and result.method == "greedy"
+    # 11 disjoint breached pairs: at least 11 drops; greedy reaches the bound, so it is optimal
+    assert result.lower_bound == 11 and len(result.drops) == 11 and result.exhaustive
+    assert check(frame.drop(columns=list(result.drops)), policy).status == "pass"
+
+
+def test_node_budget_falls_back_to_greedy(crafted: pd.DataFrame) -> None:
+    result = suggest(check(crafted, VIF_ONLY), method="exact", max_nodes=1)
+    assert result.solved and not result.exhaustive
+    assert any("stopped after 1 nodes" in note for note in result.notes)
+
+
+def test_nothing_to_drop_on_a_passing_table(clean_frame: pd.DataFrame) -> None:
+    result = suggest(check(clean_frame))
+    assert result.drops == () and result.solved and result.method == "none"
+
+
+# --- policy rewrite ---------------------------------------------------------------------------
+
+POLICY_BLOCK = """\
+# station demand policy
+policy_version: 1
+name: block-style
+columns:
+  include: ["*"]
+  exclude:
+    - station_id   # an identifier
+  categorical: []
+limits:
+  vif: {max: 5, level: fail}
+"""
+POLICY_NO_EXCLUDE = """\
+policy_version: 1
+name: no-exclude
+columns:
+  include: ["*"]
+"""
+POLICY_NO_COLUMNS = """\
+policy_version: 1
+name: no-columns  # comment kept
+"""
+
+
+@pytest.mark.parametrize("text", [POLICY_BLOCK, POLICY_NO_EXCLUDE, POLICY_NO_COLUMNS])
+def test_policy_rewrite_layouts_keep_comments(text: str) -> None:
+    out = policy_with_exclusions(text, ["dock_pressure", "odd[name]*"], "dropped by a test")
+    policy = parse_policy(out)
+    assert {"dock_pressure", escape_glob("odd[name]*")} <= set(policy.columns.exclude)
+    assert "# dropped by a test" in out
+    for line in text.splitlines():
+        if "#" in line:
+            assert line in out  # comments survive the in-place edit
+    if text is POLICY_BLOCK:
+        assert "station_id" in policy.columns.exclude
+
+
+def test_escaped_glob_matches_only_the_name() -> None:
+    import fnmatch
+
+    pattern = escape_glob("odd[name]*?")
+    assert fnmatch.fnmatchcase("odd[name]*?", pattern)
+    assert not fnmatch.fnmatchcase("oddn", pattern)
+
+
+def test_cli_write_policy_round_trip(tmp_path: Path, crafted: pd.DataFrame,
+                                     run_cli: Callable[..., object]) -> None:
+    table = tmp_path / "station_features.parquet"
+    crafted.to_parquet(table)
+    policy_path = tmp_path / "policy.yaml"
+    policy_path.write_text("# demand features\npolicy_version: 1\nname: crafted\n"
+                           "columns:\n  exclude: [rentals]  # the target\n"
+                           "limits:\n  vif: {max: 5, level: fail}\n"
+                           "  pairwise_correlation: {level: \"off\"}\n"
+                           "  condition_number: {level: \"off\"}\n")
+    out = tmp_path / "policy.suggested.yaml"
+    result = run_cli(["suggest", str(table), "--policy", str(policy_path),
+                      "--write-policy", str(out)])
+    assert result.code == 0, result.err  # type: ignore[attr-defined]
+    assert "drop docks_in_use" in result.out  # type: ignore[attr-defined]
+    text = out.read_text()
+    assert "# the target" in text and "gate suggest" in text
+    rewritten = load_policy(out)
+    assert "docks_in_use" in rewritten.columns.exclude
+    assert check(table, rewritten).status == "pass"
+    assert check(table, policy_path).status == "fail"
+
+
+def test_cli_prefer_file_and_errors(tmp_path: Path, run_cli: Callable[..., object]) -> None:
+    table = tmp_path / "pairs.csv"
+    near_pair_frame().to_csv(table, index=False)
+    prefer = tmp_path / "importance.txt"
+    prefer.write_text("# most important first\ndock_pressure\nstation_load\n")
+    result = run_cli(["suggest", str(table), "--prefer", str(prefer)])
+    assert result.code == 0 and "drop station_load" in result.out  # type: ignore[attr-defined]
+    prefer.write_text("dock_pressure\nno_such_feature\n")
+    bad = run_cli(["suggest", str(table), "--prefer", str(prefer)])
+    assert bad.code == 2 and "no_such_feature" in bad.err  # type: ignore[attr-defined]
+    assert len(bad.err_lines) == 1  # type: ignore[attr-defined]
+    twice = tmp_path / "twice.txt"
+    twice.write_text("dock_pressure\ndock_pressure\n")
+    dup = run_cli(["suggest", str(table), "--prefer", str(twice)])
+    assert dup.code == 2 and "line 2" in dup.err  # type: ignore[attr-defined]
+    kept = run_cli(["suggest", str(table), "--keep", "dock_pressure,station_load"])
+    assert kept.code == 1 and "not solved" in kept.out  # type: ignore[attr-defined]
