@@ -290,6 +290,7 @@ def _verdict_section(verdict: Verdict) -> str:
     ]
     rows = [{"item": k, "value": v} for k, v in items]
     table = _table(rows, {"item": "", "value": ""}, "verdict", stub="item")
+    table = table.tab_options(column_labels_hidden=True)
     table = _mark_rows(table, [0], verdict.status, "value")
     out = _fragment(table)
     if verdict.design.notes:
@@ -325,10 +326,14 @@ def _findings_section(verdict: Verdict) -> str:
                 "waiver": (f"{waiver.owner}: {waiver.reason} (until {waiver.expires.isoformat()})"
                            if waiver is not None else ""),
             })
-        table = _table(rows, {"level": "Result", "rule": "Rule", "features": "Features",
-                              "value": "Value", "limit": "Limit", "message": "Detail",
-                              "waiver": "Waiver (owner: reason, expiry)"},
-                       "findings", right=["value", "limit"])
+        columns = {"level": "Result", "rule": "Rule", "features": "Features", "value": "Value",
+                   "limit": "Limit", "message": "Detail",
+                   "waiver": "Waiver (owner: reason, expiry)"}
+        if not any(row["waiver"] for row in rows):
+            del columns["waiver"]
+            for row in rows:
+                del row["waiver"]
+        table = _table(rows, columns, "findings", right=["value", "limit"])
         for kind, positions in marks.items():
             table = _mark_rows(table, positions, kind, "level")
         parts.append(_fragment(table))
@@ -356,7 +361,7 @@ def _findings_section(verdict: Verdict) -> str:
 
 def _finding_value(f: Finding) -> str:
     if f.value is not None:
-        return _signed(f.value) if f.rule == "pairwise_correlation" else _num(f.value)
+        return _signed(f.value) if f.rule == "pairwise_correlation" else _num(f.value, 2)
     if f.rule in ("vif", "condition_number"):
         return "\u221e" if "infinite" in f.message else "undefined"
     if f.rule == "rank_deficiency":
@@ -519,17 +524,19 @@ def _matrix_section(verdict: Verdict) -> str:
     corr = verdict.diagnostics.correlation
     keys = [f"c{k}" for k in range(p)]
     frame = pd.DataFrame(np.round(corr, 6), columns=keys)
-    frame.insert(0, "feature", list(names))
+    # Numbered columns keep the matrix narrow; the row labels carry number and name.
+    frame.insert(0, "feature", [f"{k + 1}. {name}" for k, name in enumerate(names)])
     table = GT(frame, rowname_col="feature", id="matrix")
-    table = table.cols_label(cases=dict(zip(keys, names)))
+    table = table.cols_label(cases={key: str(k + 1) for k, key in enumerate(keys)})
     table = table.fmt_number(columns=keys, decimals=2).sub_missing(columns=keys,
                                                                    missing_text="\u2014")
     table = table.data_color(columns=keys, palette=_MATRIX_PALETTE, domain=[-1, 1],
                              na_color="#e7e5df", truncate=True)
     table = _style(table).tab_options(table_font_size="11px", data_row_padding="2px")
     table = table.tab_source_note(
-        "Pearson r between design columns: blue negative, red positive, the number printed in "
-        "every cell. \u2014: a constant column has no correlation.")
+        "Pearson r between design columns (column k is the feature numbered k): blue "
+        "negative, red positive, the number printed in every cell. \u2014: a constant column "
+        "has no correlation.")
     return _fragment(table)
 
 
