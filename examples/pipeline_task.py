@@ -17,9 +17,10 @@ import tempfile
 from pathlib import Path
 from typing import Any
 
+from gate.examples.bike_share_demand import write_tables
+
 from gate.api import check
 from gate.errors import GateFailed
-from gate.examples.bike_share_demand import write_tables
 from gate.outputs import write_check_outputs
 
 log = logging.getLogger("station_demand.features")

@@ -9,17 +9,19 @@ from __future__ import annotations
 import datetime as dt
 import threading
 from collections.abc import Callable
+from dataclasses import replace
 from pathlib import Path
 from typing import Any, Literal
 
 import numpy as np
 
-from gate.design import Design, finish_design, plan_design
+from gate.design import Design, DesignPlan, RowCounts, finish_design, plan_design
 from gate.diagnostics import Diagnostics, compute_diagnostics, plan_exact_pass
 from gate.errors import DesignError, TableError
-from gate.judge import judge, status_of
+from gate.judge import Finding, judge, status_of
 from gate.passes import Engine, LocalEngine, ProgressFactory
 from gate.policy import Policy, load_policy, today_utc
+from gate.statistics import CentredGram
 from gate.table import DaskFrameSource, TableSource, open_table
 from gate.verdict import TableInfo, Verdict, tool_version
 
@@ -46,6 +48,9 @@ def check(table: Any, policy: Policy | str | Path | None = None, *, label: str |
     """
     policy = policy if isinstance(policy, Policy) else load_policy(policy)
     source = open_table(table)
+    if policy.segments is not None:
+        return _check_segments(source, policy, label=label, today=today, chunk_rows=chunk_rows,
+                               progress=progress)
     digest = _hash_in_background(source)
     with _engine(source, engine, scheduler) as runner:
         plan = plan_design(source, policy, distinct=runner.distinct_values)
@@ -63,8 +68,74 @@ def check(table: Any, policy: Policy | str | Path | None = None, *, label: str |
     diagnostics = compute_diagnostics(
         gram, exact, factor=factor, groups=tuple(g.indices for g in design.groups),
         scaling=policy.limits.condition_number.scaling)
-    return build_verdict(diagnostics, design, policy, source_name=source.name,
-                         sha256=digest(), label=label, today=today)
+    verdict = build_verdict(diagnostics, design, policy, source_name=source.name,
+                            sha256=digest(), label=label, today=today)
+    return _with_structural(verdict, source, plan)
+
+
+def _with_structural(verdict: Verdict, source: TableSource, plan: DesignPlan) -> Verdict:
+    """Stage after judging: squares/products among breaching features (information only)."""
+    if isinstance(source, DaskFrameSource):
+        return verdict  # a sample read would start the cluster's graph again; not worth it
+    from gate.structural import structural_terms
+
+    terms = structural_terms(source, plan, verdict.design, verdict.diagnostics, verdict.policy)
+    if not terms:
+        return verdict
+    names = verdict.design.features
+    notes = tuple(Finding("structural", "info", (names[t.feature],
+                                                 *(names[k] for k in dict.fromkeys(t.parents))),
+                          t.correlation, None, t.describe(names)) for t in terms)
+    return replace(verdict, structural=terms, findings=verdict.findings + notes)
+
+
+def _check_segments(source: TableSource, policy: Policy, *, label: str | None,
+                    today: dt.date | None, chunk_rows: int | None,
+                    progress: ProgressFactory | None) -> Verdict:
+    """The whole gate per segment and on the whole table, from ONE main pass: each segment's
+    CentredGram is accumulated separately and the whole table's Gram is their merge."""
+    from gate.segments import SegmentSource, segment_pass, segment_policy
+    from gate.verdict import SegmentVerdict
+
+    spec = policy.segments
+    assert spec is not None
+    if isinstance(source, DaskFrameSource):
+        raise TableError(f"{source.name}: policy segments run on the local engine; pass a file, "
+                         "a pandas DataFrame or a pyarrow Table")
+    digest = _hash_in_background(source)
+    runner = LocalEngine()
+    plan = plan_design(source, segment_policy(policy))
+    result = segment_pass(source, plan, spec.by, chunk_rows=chunk_rows)
+    sha256 = digest()
+
+    def stages(part: TableSource, full_gram: CentredGram, counts: RowCounts,
+               name: str) -> Verdict:
+        design = finish_design(plan, full_gram, counts)
+        gram = full_gram.select(np.asarray(design.selection, dtype=np.intp))
+        _check_rows(design, gram.rows, gram.weight_sum, name)
+        exact = plan_exact_pass(gram, tolerance=policy.limits.rank_deficiency.tolerance)
+        factor = runner.exact_pass(part, plan, design.selection, exact, chunk_rows=chunk_rows,
+                                   progress=progress) if exact.needs_exact_pass else None
+        diagnostics = compute_diagnostics(
+            gram, exact, factor=factor, groups=tuple(g.indices for g in design.groups),
+            scaling=policy.limits.condition_number.scaling)
+        return build_verdict(diagnostics, design, policy, source_name=name, sha256=sha256,
+                             label=label, today=today)
+
+    whole = _with_structural(stages(source, result.gram, result.counts, source.name),
+                             source, plan)
+    verdicts: list[SegmentVerdict] = []
+    for segment in result.segments:
+        rows, used = segment.counts.read, segment.gram.rows
+        if used < spec.min_rows or segment.gram.weight_sum <= 0.0:
+            reason = (f"{used} used rows < segments.min_rows {spec.min_rows}"
+                      if used < spec.min_rows else "row weights sum to zero")
+            verdicts.append(SegmentVerdict(result.by, segment.key, rows, used, None, reason))
+        else:
+            part = SegmentSource(source, result.by, segment.key)
+            verdicts.append(SegmentVerdict(result.by, segment.key, rows, used,
+                                           stages(part, segment.gram, segment.counts, part.name)))
+    return whole.with_segments(tuple(verdicts))
 
 
 def _engine(source: TableSource, engine: str | None, scheduler: Any) -> Engine:

@@ -27,8 +27,9 @@ import numpy as np
 import scipy.linalg as sla
 
 from gate.design import Design, DesignPlan, encode_block
-from gate.diagnostics import Diagnostics, FloatArray
+from gate.diagnostics import Diagnostics
 from gate.policy import Policy
+from gate.statistics import FloatArray
 from gate.table import TableSource
 
 #: Rows read for the check (the first used rows of the table).

@@ -65,12 +65,15 @@ import scipy.linalg as sla
 import yaml
 
 from gate.design import Design
-from gate.diagnostics import Diagnostics, FloatArray, IntArray, condition_indices
+from gate.diagnostics import Diagnostics, IntArray, condition_indices
 from gate.errors import DesignError, PolicyError
 from gate.policy import Policy, parse_policy, today_utc
+from gate.statistics import FloatArray
 from gate.verdict import Verdict
 
 Method = Literal["auto", "exact", "greedy"]
+#: Drop priority of a unit: (preference key, design position); smaller = dropped sooner.
+Priority = tuple[int, int]
 #: Above this many candidate units the exact search gives way to the greedy one.
 EXACT_LIMIT = 20
 #: Nodes the exact search may visit before it stops and falls back to the greedy result.
@@ -218,8 +221,8 @@ class _Problem:
         self.cond_waivers = [set(w.features) for w in active if w.rule == "condition_number"]
         self.pairs: list[tuple[int, int, float]] = []
         if self.pair_max is not None:
-            i, j, r = diagnostics.pairs(self.pair_max)
-            for a, b, v in zip(i.tolist(), j.tolist(), r.tolist()):
+            first, second, values = diagnostics.pairs(self.pair_max)
+            for a, b, v in zip(first.tolist(), second.tolist(), values.tolist()):
                 both = {self.names[a], self.names[b]}
                 if not any(both <= w for w in self.pair_waivers):
                     self.pairs.append((a, b, v))
@@ -428,7 +431,7 @@ class _BudgetSpent(Exception):
 
 
 class _Search:
-    def __init__(self, problems: list[_Problem], priority: dict[str, tuple[int, ...]],
+    def __init__(self, problems: list[_Problem], priority: dict[str, Priority],
                  max_nodes: int) -> None:
         self.problems = problems
         self.priority = priority  # unit -> preference key (smaller = drop sooner)
@@ -440,7 +443,10 @@ class _Search:
     def state(self, dropped: frozenset[str]) -> _State:
         hit = self.cache.get(dropped)
         if hit is None:
-            feasible, breaches, inflation, explainers = True, [], {}, {}
+            feasible = True
+            breaches: list[_Breach] = []
+            inflation: dict[str, float] = {}
+            explainers: dict[str, list[str]] = {}
             for problem in self.problems:
                 st = problem.evaluate(dropped)
                 feasible &= st.feasible
@@ -684,7 +690,7 @@ def _check_names(names: Iterable[str], units: list[str], whole: _Problem, option
                           f"{shown}")
 
 
-def _tie_key(chosen: frozenset[str], base: frozenset[str], priority: dict[str, tuple[int, ...]],
+def _tie_key(chosen: frozenset[str], base: frozenset[str], priority: dict[str, Priority],
              whole: _Problem) -> tuple[tuple[int, ...], float, tuple[str, ...]]:
     # Preference: compare the most important dropped unit first (larger position = less
     # important = better), i.e. minimise the sorted preference keys lexicographically.
@@ -694,7 +700,7 @@ def _tie_key(chosen: frozenset[str], base: frozenset[str], priority: dict[str, t
 
 
 def _order_drops(search: _Search, base: frozenset[str], chosen: list[str],
-                 priority: dict[str, tuple[int, ...]]) -> list[str]:
+                 priority: dict[str, Priority]) -> list[str]:
     """Report order: at each step the chosen unit with the highest current VIF."""
     left = list(chosen)
     order: list[str] = []
@@ -709,7 +715,7 @@ def _order_drops(search: _Search, base: frozenset[str], chosen: list[str],
 
 
 def _resolve_dependencies(problems: list[_Problem], keep: set[str],
-                          priority: dict[str, tuple[int, ...]]
+                          priority: dict[str, Priority]
                           ) -> tuple[list[str], dict[str, str], list[str]]:
     """One unit per exact dependency (matroid greedy on the null-space basis)."""
     dropped: list[str] = []
@@ -722,7 +728,7 @@ def _resolve_dependencies(problems: list[_Problem], keep: set[str],
         expressed = {problem.column_unit[dep.expressed] for dep in problem.d.dependencies}
         needed = _rank(basis)
 
-        def columns_of(units: Iterable[str]) -> list[int]:
+        def columns_of(units: Iterable[str], problem: _Problem = problem) -> list[int]:
             return [int(c) for u in units if u in problem.unit_columns
                     for c in problem.unit_columns[u]]
 
@@ -843,7 +849,7 @@ def _edit_in_place(text: str, items: list[str], comment: str) -> str | None:
     if columns is None:
         body = "".join(lines)
         return body + f"{comment}\ncolumns:\n  exclude: [{', '.join(map(_yaml_item, items))}]\n"
-    key, node = columns
+    _, node = columns
     if not isinstance(node, yaml.MappingNode) or node.flow_style:
         return None
     exclude = next(((k, v) for k, v in node.value if k.value == "exclude"), None)
@@ -895,7 +901,7 @@ def _rewrite(text: str, items: list[str], comment: str) -> str | None:
     exclude = list(columns.get("exclude") or [])
     columns["exclude"] = exclude + [i for i in items if i not in exclude]
     header = f"{comment}\n# (re-serialised: the original file's comments were not kept)\n"
-    return header + yaml.safe_dump(data, sort_keys=False, default_flow_style=False)
+    return header + str(yaml.safe_dump(data, sort_keys=False, default_flow_style=False))
 
 
 def suggestion_comment(suggestion: Suggestion, policy: Policy, today: dt.date | None = None

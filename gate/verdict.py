@@ -12,8 +12,7 @@ from typing import Any
 from gate.design import Design
 from gate.diagnostics import GRAM_RESOLUTION, INTERCEPT, Diagnostics
 from gate.errors import GateFailed
-from gate.judge import INTERCEPT_NAME, Finding, Status, WaiverState, describe_dependency
-from gate.judge import status_of
+from gate.judge import INTERCEPT_NAME, Finding, Status, WaiverState, describe_dependency, status_of
 from gate.policy import Policy
 from gate.structural import StructuralTerm
 
