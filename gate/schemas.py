@@ -83,6 +83,20 @@ class PairRecord(_Closed):
     r: float = Field(ge=-1.0000001, le=1.0000001)
 
 
+class StructuralRecord(_Open):
+    """A feature that is (nearly) a square or product of others."""
+
+    feature: str
+    kind: Literal["square", "product"]
+    parents: list[str]
+    r: float
+    sample_rows: int = Field(ge=0)
+    vif: Number
+    vif_centred: Number
+    parent_vif: list[Number]
+    parent_vif_centred: list[Number]
+
+
 class Diagnostics(_Open):
     vif: dict[str, Number] = Field(description="VIF per feature; null = infinite.")
     gvif: dict[str, GroupInflation]
@@ -98,6 +112,11 @@ class Diagnostics(_Open):
     rank_tolerance: float
     gram_resolution: float
     route: str
+    effective_rows: dict[str, Number] | None = Field(
+        default=None, description="n / VIF per feature (n / GVIF^(1/df) per group).")
+    se_inflation: dict[str, Number] | None = Field(
+        default=None, description="sqrt(VIF) per feature; null = infinite.")
+    structural: list[StructuralRecord] | None = None
 
 
 class FindingRecord(_Closed):
@@ -121,6 +140,30 @@ class WaiverRecord(_Closed):
     covered: int = Field(ge=0)
 
 
+class SegmentDiagnostics(_Open):
+    vif: dict[str, Number]
+    gvif: dict[str, GroupInflation]
+    condition_number: Number
+    rank: int = Field(ge=0)
+    dependencies: list[DependencyRecord]
+    pairs: list[PairRecord]
+
+
+class SegmentRecord(_Open):
+    """One segment's outcome (policy key ``segments``)."""
+
+    key: dict[str, str | None]
+    label: str
+    status: Literal["pass", "warn", "fail", "not_judged"]
+    judged: bool
+    reason: str | None
+    rows: int = Field(ge=0)
+    rows_used: int = Field(ge=0)
+    features: list[str] | None = None
+    findings: list[FindingRecord] | None = None
+    diagnostics: SegmentDiagnostics | None = None
+
+
 class VerdictDocument(_Open):
     """verdict.json, as written by `gate check`."""
 
@@ -137,6 +180,8 @@ class VerdictDocument(_Open):
     diagnostics: Diagnostics
     findings: list[FindingRecord]
     waivers: list[WaiverRecord]
+    segments: list[SegmentRecord] | None = Field(
+        default=None, description="Per-segment outcomes, when the policy sets segments.")
 
 
 def policy_schema() -> dict[str, Any]:

@@ -153,3 +153,22 @@ def test_cli_writes_junit(tmp_path: Path, run_cli: Any, write_table: Any) -> Non
     assert result.code == 1
     _assert_conventions(ET.parse(target).getroot())
     assert str(target) in result.out
+
+
+def test_segment_findings_are_named_by_segment() -> None:
+    rng = np.random.default_rng(6)
+    temp = rng.normal(20.0, 4.0, 400)
+    frame = pd.DataFrame({"temp_c": temp, "temp_c_sq": temp**2, "wind": rng.normal(size=400),
+                          "region": rng.choice(["north", "south", "isle"], 400,
+                                               p=[0.5, 0.45, 0.05])})
+    policy = policy_from("""
+        policy_version: 1
+        name: segmented
+        segments: {by: [region], min_rows: 30}
+        """)
+    root = _parse(check(frame, policy, today=TODAY))
+    _assert_conventions(root)
+    segment_cases = [c.attrib["name"] for c in root.iter("testcase")
+                     if c.attrib["classname"].endswith(".segment")]
+    assert len(segment_cases) == 3
+    assert any(name.startswith("segment[region=isle") for name in segment_cases)

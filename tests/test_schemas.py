@@ -76,6 +76,20 @@ def _with_missing() -> pd.DataFrame:
     return frame
 
 
+def _segmented_with_square() -> pd.DataFrame:
+    rng = np.random.default_rng(6)
+    temp = rng.normal(20.0, 4.0, 400)
+    return pd.DataFrame({"temp_c": temp, "temp_c_sq": temp**2, "wind": rng.normal(size=400),
+                         "region": rng.choice(["north", "south", "isle"], 400,
+                                              p=[0.5, 0.45, 0.05])})
+
+
+SEGMENT_POLICY = """
+policy_version: 1
+name: segmented
+segments: {by: [region], min_rows: 30}
+"""
+
 CASES = {
     "pass": (make_clean_frame, None, "pass"),
     "warn": (_near_pair, None, "warn"),
@@ -85,6 +99,7 @@ CASES = {
     "waived, stale and expired waivers": (make_docks_frame, WAIVER_POLICY, "fail"),
     "more features than rows": (_wide, None, "fail"),
     "missing values dropped": (_with_missing, None, "pass"),
+    "segments and a structural square": (_segmented_with_square, SEGMENT_POLICY, "fail"),
 }
 
 
@@ -113,6 +128,10 @@ def test_cases_cover_what_they_claim(documents: dict[str, dict[str, Any]]) -> No
     states = {w["state"] for w in documents["waived, stale and expired waivers"]["waivers"]}
     assert states == {"active", "stale", "expired"}
     assert documents["missing values dropped"]["table"]["rows_dropped"] == 3
+    segmented = documents["segments and a structural square"]
+    assert len(segmented["segments"]) == 3
+    assert {s["judged"] for s in segmented["segments"]} == {True, False}
+    assert segmented["diagnostics"]["structural"][0]["kind"] == "square"
 
 
 @pytest.mark.parametrize("breakage", [
@@ -122,10 +141,11 @@ def test_cases_cover_what_they_claim(documents: dict[str, dict[str, Any]]) -> No
     lambda d: d["diagnostics"]["pairs"].append({"a": "x", "b": "y", "r": 1.5}),
     lambda d: d["diagnostics"].pop("vif"),
     lambda d: d["table"].update(rows=-1),
+    lambda d: d["waivers"][0].update(state="pending"),
 ])
 def test_schema_rejects_broken_verdicts(documents: dict[str, dict[str, Any]],
                                         breakage: Any) -> None:
-    document = copy.deepcopy(documents["rank-deficient and categorical"])
+    document = copy.deepcopy(documents["waived, stale and expired waivers"])
     breakage(document)
     with pytest.raises(jsonschema.ValidationError):
         VALIDATOR(verdict_schema()).validate(document)

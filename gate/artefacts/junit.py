@@ -102,7 +102,12 @@ def _case(rule: str, subject: str, names: Counter[str]) -> ET.Element:
 
 
 def _subject(finding: Finding) -> str:
-    return ", ".join(finding.features) if finding.features else "design"
+    if finding.features:
+        return ", ".join(finding.features)
+    if finding.rule == "segment" and finding.message.startswith("segment "):
+        # segment findings name their segment in the message ("segment region=north (...)")
+        return finding.message[len("segment "):].split(" (")[0].split(":")[0]
+    return "design"
 
 
 def _details(finding: Finding) -> str:
