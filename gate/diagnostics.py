@@ -99,6 +99,7 @@ class ExactPassPlan:
     scale: FloatArray
     tolerance: float
     cholesky: FloatArray | None = field(default=None, repr=False)  # Rt when the Gram sufficed
+    cholesky_inverse: FloatArray | None = field(default=None, repr=False)  # its inverse (dtrtri)
 
 
 @dataclass(frozen=True)
@@ -173,8 +174,8 @@ def plan_exact_pass(gram: CentredGram, *, tolerance: float | None = None) -> Exa
     if tol >= GRAM_RESOLUTION:
         # The Gram resolves ratios above GRAM_RESOLUTION; a coarser tolerance is decided here.
         return ExactPassPlan(constant, False, columns, centre, col_scale, tol, None)
-    rt = _certified_cholesky(corr)
-    return ExactPassPlan(constant, rt is None, columns, centre, col_scale, tol, rt)
+    rt, rt_inverse = _certified_cholesky(corr)
+    return ExactPassPlan(constant, rt is None, columns, centre, col_scale, tol, rt, rt_inverse)
 
 
 def exact_pass_block(plan: ExactPassPlan, values: FloatArray,
@@ -217,12 +218,17 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
 
     kept = nc[kept_local]
     r_kept = rt if plan.cholesky is not None else _refactor_columns(rt, kept_local)
-    r_inverse = _triangular_inverse(r_kept)
+    # The certification already inverted Rt when the Gram sufficed: one dtrtri per check.
+    r_inverse = plan.cholesky_inverse if plan.cholesky is not None \
+        and plan.cholesky_inverse is not None else _triangular_inverse(r_kept)
     vif = np.full(p, np.inf)
     vif[kept] = np.einsum("ij,ij->i", r_inverse, r_inverse)
     vif[in_dependency] = np.inf
     inverse_correlation = np.full((p, p), np.nan)
-    inverse_correlation[np.ix_(kept, kept)] = r_inverse @ r_inverse.T
+    if kept.size == p:
+        inverse_correlation = _upper_times_transpose(r_inverse)
+    else:
+        inverse_correlation[np.ix_(kept, kept)] = _upper_times_transpose(r_inverse)
 
     group_results = tuple(
         _group_inflation(g, in_dependency, correlation, inverse_correlation) for g in groups
@@ -249,26 +255,36 @@ def _correlation_block(comoment: FloatArray, columns: IntArray, scale: FloatArra
     return block
 
 
-def _certified_cholesky(corr: FloatArray) -> FloatArray | None:
-    """Upper Cholesky factor of corr if its singular values are certainly resolved, else None.
+def _certified_cholesky(corr: FloatArray) -> tuple[FloatArray | None, FloatArray | None]:
+    """Upper Cholesky factor of corr and its inverse if its singular values are certainly
+    resolved, else (None, None).
 
-    lambda_min >= 1 / trace(corr^-1) = 1 / sum(VIF) and lambda_max <= trace(corr) = p, so a
-    small VIF sum certifies the singular-value ratio without an eigen-decomposition; otherwise
-    the eigenvalues decide.
+    With A = Rt^-1: 1 / lambda_min = ||A||_2^2 <= min(||A||_F^2, ||A||_1 ||A||_inf), where
+    ||A||_F^2 = trace(corr^-1) = sum(VIF); and lambda_max <= min(p, ||corr||_inf) (Golub & Van
+    Loan, "Matrix Computations", 4th ed., 2.3.2 and 8.1). These O(p^2) bounds certify the
+    singular-value ratio without an eigen-decomposition in all but borderline cases; only then
+    do the eigenvalues decide.
     """
     try:
         rt: FloatArray = np.asarray(sla.cholesky(corr, lower=False, check_finite=False))
     except np.linalg.LinAlgError:
-        return None
+        return None, None
     inverse, info = sla.lapack.dtrtri(rt, lower=0)
+    inverse = np.asarray(inverse)
     if info == 0 and np.all(np.isfinite(inverse)):
         vif_sum = float(np.einsum("ij,ij->", inverse, inverse))
         if vif_sum * corr.shape[0] * GRAM_RESOLUTION**2 < 1.0:
-            return rt
+            return rt, inverse
+        absolute = np.abs(inverse)
+        inverse_norm_sq = min(vif_sum, float(absolute.sum(axis=0).max())
+                              * float(absolute.sum(axis=1).max()))
+        largest = min(float(corr.shape[0]), float(np.abs(corr).sum(axis=1).max()))
+        if inverse_norm_sq * largest * GRAM_RESOLUTION**2 < 1.0:
+            return rt, inverse
     eigenvalues = np.linalg.eigvalsh(corr)
     if eigenvalues[0] >= (GRAM_RESOLUTION**2) * eigenvalues[-1]:
-        return rt
-    return None
+        return rt, (inverse if info == 0 else None)
+    return None, None
 
 
 def _standardised_factor(
@@ -324,9 +340,19 @@ def _rank_and_dependencies(rt: FloatArray, plan: ExactPassPlan, *, full_rank: bo
     found = _left_to_right(rt, threshold, skip={d for d, _, _ in duplicates},
                            expected=q - rank - len(duplicates))
     if found is None:
-        return _pivoted_dependencies(rt, rank)
-    kept, relations = found
-    return kept, sorted(duplicates + relations, key=lambda rel: rel[0])
+        kept, relations = _pivoted_dependencies(rt, rank)
+    else:
+        kept, relations = found[0], sorted(duplicates + found[1], key=lambda rel: rel[0])
+    # Columns have unit length, so a term's share of the relation is |coefficient|: a term
+    # below the rank threshold is as negligible as the residual the threshold accepts.
+    return kept, [(d, basis, _without_negligible(coef, threshold)) for d, basis, coef in relations]
+
+
+def _without_negligible(coef: FloatArray, threshold: float) -> FloatArray:
+    small = np.abs(coef) <= threshold
+    if small.all():
+        return coef
+    return np.where(small, 0.0, coef)
 
 
 def _duplicates(rt: FloatArray, threshold: float) -> list[Relation]:
@@ -428,6 +454,18 @@ def _refactor_columns(rt: FloatArray, columns: IntArray) -> FloatArray:
     r = np.asarray(np.linalg.qr(rt[:, columns], mode="r"))
     signs = np.where(np.diag(r) < 0, -1.0, 1.0)
     return r * signs[:, None]
+
+
+def _upper_times_transpose(upper: FloatArray) -> FloatArray:
+    """U U' for upper-triangular U (LAPACK dlauum: a third of the flops of a general product),
+    symmetric by construction."""
+    if upper.size == 0:
+        return np.zeros((0, 0))
+    product, info = sla.lapack.dlauum(upper, lower=0)
+    if info != 0:
+        raise np.linalg.LinAlgError(f"dlauum failed (info={info})")
+    top = np.triu(product)
+    return np.asarray(top + np.triu(top, 1).T)
 
 
 def _triangular_inverse(r: FloatArray) -> FloatArray:

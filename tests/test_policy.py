@@ -328,8 +328,9 @@ def test_packaged_exploratory_policy_matches_the_issue() -> None:
 def test_every_shipped_policy_file_is_valid() -> None:
     root = Path(__file__).resolve().parents[1]
     files = sorted((root / "policies").glob("*.yaml")) + sorted(
-        (root / "examples").glob("*.yaml"))
-    assert files
+        p for p in (root / "examples").glob("*.yaml")
+        if "policy_version:" in p.read_text(encoding="utf-8"))  # not other tools' configs
+    assert len(files) >= 3
     for path in files:
         assert isinstance(load_policy(path), Policy)
 

@@ -434,3 +434,26 @@ def test_weighted_statistics_match_statsmodels_weighted_correlation() -> None:
     np.testing.assert_allclose(verdict.diagnostics.correlation, corr, rtol=1e-12, atol=1e-14)
     np.testing.assert_allclose(verdict.diagnostics.vif, np.diag(np.linalg.inv(corr)),
                                rtol=1e-11)
+
+
+@pytest.mark.parametrize("tolerance", [1e-2, 1e-5, None])
+def test_policy_tolerance_matches_numpy_svd_rank(tolerance: float | None) -> None:
+    # Source: numpy.linalg.svd of the centred, unit-length columns; a singular value counts when
+    # it exceeds tolerance * the largest (numpy's matrix_rank convention, relative form).
+    rng = np.random.default_rng(SEED + 11)
+    rows = 200
+    a, b, c, d = rng.normal(size=(4, rows))
+    frame = pd.DataFrame({"pump_a": a, "pump_b": b, "valve_c": c,
+                          "flow_total": a + b + 1e-3 * d})  # near, not exact
+    verdict = run_check(frame, limits={"rank_deficiency": {"tolerance": tolerance}})
+    x = frame.to_numpy()
+    z = (x - x.mean(axis=0)) / np.linalg.norm(x - x.mean(axis=0), axis=0)
+    s = np.linalg.svd(z, compute_uv=False)
+    tol = tolerance if tolerance is not None else max(rows, 5) * np.finfo(float).eps
+    assert verdict.diagnostics.rank == 1 + int(np.count_nonzero(s > tol * s[0]))
+    if verdict.diagnostics.rank < 5:
+        (dep,) = verdict.diagnostics.dependencies
+        names = {verdict.features[k] for k in dep.terms}
+        # valve_c's share is far below the tolerance: not part of the relation
+        assert names == {"pump_a", "pump_b", "flow_total"}
+        assert verdict.vif()["valve_c"] is not None
