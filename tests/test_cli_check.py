@@ -292,3 +292,49 @@ def test_out_folder_is_created(clean_frame: pd.DataFrame, write_table: Writer,
     assert run_cli(["check", write_table(clean_frame), "--out", out]).code == 0
     assert (out / "verdict.json").is_file()
     assert os.access(out / "verdict.json", os.R_OK)
+
+
+
+def test_parquet_folder_is_one_table(docks_frame: pd.DataFrame, run_cli: CliRunner,
+                                     tmp_path: Path) -> None:
+    # A folder of Parquet files (e.g. one per day) is read as one table, in sorted order.
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    folder = tmp_path / "docks_parts"
+    folder.mkdir()
+    table = pa.Table.from_pandas(docks_frame, preserve_index=False)
+    pq.write_table(table.slice(0, 100), folder / "part-0.parquet", row_group_size=30)
+    pq.write_table(table.slice(100), folder / "part-1.parquet", row_group_size=50)
+    whole = tmp_path / "whole.parquet"
+    pq.write_table(table, whole)
+    a_out, b_out = tmp_path / "a", tmp_path / "b"
+    run_cli(["check", folder, "--out", a_out])
+    run_cli(["check", whole, "--out", b_out])
+    a, b = read_verdict(a_out), read_verdict(b_out)
+    assert a["table"]["rows"] == b["table"]["rows"] == 240
+    assert a["features"] == b["features"]
+    for name, value in b["diagnostics"]["vif"].items():
+        if value is None:
+            assert a["diagnostics"]["vif"][name] is None
+        else:
+            assert a["diagnostics"]["vif"][name] == pytest.approx(value, rel=1e-10)
+    assert [d["relation"] for d in a["diagnostics"]["dependencies"]] == [
+        d["relation"] for d in b["diagnostics"]["dependencies"]]
+    first = a["table"]["sha256"]
+    pq.write_table(table.slice(100, 50), folder / "part-1.parquet")
+    run_cli(["check", folder, "--out", a_out])
+    assert read_verdict(a_out)["table"]["sha256"] != first  # the digest covers every file
+
+
+def test_chunk_rows_does_not_change_the_verdict(docks_frame: pd.DataFrame, write_table: Writer,
+                                                run_cli: CliRunner, tmp_path: Path) -> None:
+    table = write_table(docks_frame)
+    documents = []
+    for chunk in ("7", "100000"):
+        out = tmp_path / chunk
+        run_cli(["check", table, "--out", out, "--chunk-rows", chunk])
+        documents.append(read_verdict(out))
+    a, b = documents
+    assert [f["message"] for f in a["findings"]] == [f["message"] for f in b["findings"]]
+    assert a["status"] == b["status"]
