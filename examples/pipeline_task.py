@@ -31,9 +31,12 @@ class FeatureTableRejected(RuntimeError):
     """The task's failure: the orchestrator shows this message and keeps the artefacts."""
 
 
-def validate_station_features(table: str | Path, policy: str | Path, out_dir: str | Path, *,
-                              run_id: str) -> dict[str, Any]:
-    """Check one feature table; return a small summary for the next task, or raise."""
+def validate_station_features(table: str | Path, policy: str | Path | None,
+                              out_dir: str | Path, *, run_id: str) -> dict[str, Any]:
+    """Check one feature table; return a small summary for the next task, or raise.
+
+    ``policy`` None uses the packaged default policy.
+    """
     verdict = check(table, policy, label=f"station-demand run {run_id}")
     written = write_check_outputs(verdict, Path(out_dir))
     try:

@@ -320,7 +320,9 @@ def _run_check_files(args: argparse.Namespace) -> int:
     worst = 0
     used: set[str] = set()
     for name in args.files:
-        folder = "".join(ch if ch.isalnum() or ch in "._-" else "_" for ch in name)
+        path = Path(name).resolve()
+        shown = path.relative_to(Path.cwd()) if path.is_relative_to(Path.cwd()) else path.name
+        folder = "".join(ch if ch.isalnum() or ch in "._-" else "_" for ch in str(shown))
         while folder in used:
             folder += "_"
         used.add(folder)
