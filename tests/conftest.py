@@ -6,10 +6,12 @@ state what the gate must find without running the gate to find out.
 
 from __future__ import annotations
 
+import functools
 import textwrap
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -163,3 +165,29 @@ def pytest_terminal_summary(terminalreporter: pytest.TerminalReporter) -> None:
     terminalreporter.section("accuracy against outside references (max relative error)")
     for name, error in sorted(ACCURACY.items()):
         terminalreporter.write_line(f"{name:<60} {error:.3e}")
+
+
+@pytest.fixture(autouse=True)
+def _every_verdict_matches_the_schema(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Validate every verdict.json document the suite builds (Verdict.to_dict: verdict.json,
+    `--format json`, demo, segments) against the schema `gate verdict schema` prints."""
+    from gate.verdict import Verdict
+
+    validator = _verdict_validator()
+    original = Verdict.to_dict
+
+    def checked(self: Verdict) -> dict[str, Any]:
+        document = original(self)
+        validator.validate(document)
+        return document
+
+    monkeypatch.setattr(Verdict, "to_dict", checked)
+
+
+@functools.cache
+def _verdict_validator() -> Any:
+    import jsonschema
+
+    from gate.schemas import verdict_schema
+
+    return jsonschema.Draft202012Validator(verdict_schema())
