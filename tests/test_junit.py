@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pytest
 import pandas as pd
 from conftest import make_clean_frame, make_docks_frame, policy_from
 
@@ -172,3 +173,20 @@ def test_segment_findings_are_named_by_segment() -> None:
                      if c.attrib["classname"].endswith(".segment")]
     assert len(segment_cases) == 3
     assert any(name.startswith("segment[region=isle") for name in segment_cases)
+
+
+def test_many_findings_per_rule_fold_into_one_case(monkeypatch: pytest.MonkeyPatch) -> None:
+    import gate.artefacts.junit as junit
+
+    verdict = check(make_docks_frame(), policy_from(WAIVED_POLICY), today=TODAY)
+    vif_fails = [f for f in verdict.findings if f.rule == "vif" and f.level == "fail"]
+    assert len(vif_fails) >= 3
+    monkeypatch.setattr(junit, "MAX_CASES_PER_RULE", 1)
+    root = _parse(verdict)
+    _assert_conventions(root)
+    vif_cases = [c for c in root.iter("testcase") if c.attrib["classname"].endswith(".vif")]
+    assert len(vif_cases) == 2
+    rest = vif_cases[1]
+    assert rest.attrib["name"] == f"vif[{len(vif_fails) - 1} more]"
+    failure = rest.find("failure")
+    assert failure is not None and "verdict.json lists every finding" in failure.attrib["message"]

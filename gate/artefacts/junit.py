@@ -9,6 +9,8 @@ Layout (the widely used JUnit XML conventions: ``testsuites > testsuite > testca
 * a fail finding carries ``<failure>``; a warning passes but says so in ``<system-out>``
   (shown by most CI systems) and in a suite property ``warning.N``; a waived finding is
   ``<skipped>`` with the waiver's owner, reason and expiry in its message;
+* at most ``MAX_CASES_PER_RULE`` cases per rule, most severe first; the rest is one case
+  ``rule[N more]`` that fails if any of them fails;
 * ``tests``, ``failures``, ``errors`` (always 0: errors mean the gate could not judge, which
   exits 2 without a report) and ``skipped`` count the test cases; ``testsuites`` repeats them.
 
@@ -29,6 +31,10 @@ from gate.policy import RULES
 from gate.verdict import Verdict
 
 SUITE_NAME = "collinearity-gate"
+#: Test cases per rule before the rest (the least severe) is folded into one case; a design
+#: with thousands of correlated pairs would otherwise give a JUnit file CI systems choke on.
+MAX_CASES_PER_RULE = 500
+MAX_WARNING_PROPERTIES = 100
 CLASS_PREFIX = "collinearity_gate"
 _XML_INVALID = re.compile("[^\u0009\u000a\u000d\u0020-\ud7ff\ue000-\ufffd\U00010000-\U0010ffff]")
 
@@ -42,25 +48,34 @@ def junit_xml(verdict: Verdict) -> str:
     with_findings = {f.rule for f in verdict.findings}
     limits = verdict.policy.limits.model_dump()
 
+    by_rule: dict[str, list[Finding]] = {}
     for finding in verdict.findings:
-        case = _case(finding.rule, _subject(finding), names)
-        if finding.waived:
-            case.append(_element("skipped", message=_waiver_text(verdict, finding)))
-            counts["skipped"] += 1
-        elif finding.level == "fail":
-            failure = _element("failure", message=finding.message, type=f"{finding.rule}.fail")
-            failure.text = _clean(_details(finding))
-            case.append(failure)
-            counts["failures"] += 1
-        elif finding.level == "warn":
-            warnings.append(f"{finding.rule}[{_subject(finding)}]: {finding.message}")
-            out = ET.SubElement(case, "system-out")
-            out.text = _clean(f"WARNING (does not fail the gate): {finding.message}\n"
-                              + _details(finding))
-        else:
-            out = ET.SubElement(case, "system-out")
-            out.text = _clean(f"{finding.level.upper()}: {finding.message}")
-        cases.append(case)
+        by_rule.setdefault(finding.rule, []).append(finding)
+    for rule, findings in by_rule.items():
+        findings.sort(key=_severity)  # stable: the policy's order within a severity
+        for finding in findings[:MAX_CASES_PER_RULE]:
+            case = _case(finding.rule, _subject(finding), names)
+            if finding.waived:
+                case.append(_element("skipped", message=_waiver_text(verdict, finding)))
+                counts["skipped"] += 1
+            elif finding.level == "fail":
+                failure = _element("failure", message=finding.message,
+                                   type=f"{finding.rule}.fail")
+                failure.text = _clean(_details(finding))
+                case.append(failure)
+                counts["failures"] += 1
+            elif finding.level == "warn":
+                warnings.append(f"{finding.rule}[{_subject(finding)}]: {finding.message}")
+                out = ET.SubElement(case, "system-out")
+                out.text = _clean(f"WARNING (does not fail the gate): {finding.message}\n"
+                                  + _details(finding))
+            else:
+                out = ET.SubElement(case, "system-out")
+                out.text = _clean(f"{finding.level.upper()}: {finding.message}")
+            cases.append(case)
+        rest = findings[MAX_CASES_PER_RULE:]
+        if rest:
+            cases.append(_rest_case(rule, rest, names, counts, warnings))
     for rule in RULES:
         if rule in with_findings:
             continue
@@ -91,6 +106,37 @@ def junit_xml(verdict: Verdict) -> str:
 
 def write_junit(verdict: Verdict, path: str | Path) -> Path:
     return write_atomic(path, junit_xml(verdict))
+
+
+def _severity(finding: Finding) -> int:
+    if finding.waived:
+        return 3
+    return {"fail": 0, "warn": 1}.get(finding.level, 2)
+
+
+def _rest_case(rule: str, rest: list[Finding], names: Counter[str], counts: Counter[str],
+               warnings: list[str]) -> ET.Element:
+    """One test case standing for the findings past MAX_CASES_PER_RULE (the least severe)."""
+    levels = Counter("waived" if f.waived else f.level for f in rest)
+    summary = ", ".join(f"{n} {level}" for level, n in sorted(levels.items()))
+    text = (f"{len(rest)} more {rule} findings ({summary}) are not listed one by one here; "
+            "verdict.json lists every finding")
+    case = _case(rule, f"{len(rest)} more", names)
+    if levels["fail"]:
+        failure = _element("failure", message=text, type=f"{rule}.fail")
+        case.append(failure)
+        counts["failures"] += 1
+    elif levels["warn"]:
+        warnings.append(f"{rule}[{len(rest)} more]: {text}")
+        out = ET.SubElement(case, "system-out")
+        out.text = _clean(f"WARNING (does not fail the gate): {text}")
+    elif levels["waived"] == len(rest):
+        case.append(_element("skipped", message=f"waived: {text}"))
+        counts["skipped"] += 1
+    else:
+        out = ET.SubElement(case, "system-out")
+        out.text = _clean(text)
+    return case
 
 
 def _case(rule: str, subject: str, names: Counter[str]) -> ET.Element:
@@ -142,7 +188,7 @@ def _properties(verdict: Verdict, warnings: list[str]) -> list[tuple[str, str]]:
         ("tool.version", verdict.tool_version),
         ("warnings", str(len(warnings))),
     ]
-    out += [(f"warning.{k + 1}", text) for k, text in enumerate(warnings)]
+    out += [(f"warning.{k + 1}", text) for k, text in enumerate(warnings[:MAX_WARNING_PROPERTIES])]
     return out
 
 
