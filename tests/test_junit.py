@@ -14,8 +14,8 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import pytest
 import pandas as pd
+import pytest
 from conftest import make_clean_frame, make_docks_frame, policy_from
 
 from gate.api import check
@@ -176,7 +176,7 @@ def test_segment_findings_are_named_by_segment() -> None:
 
 
 def test_many_findings_per_rule_fold_into_one_case(monkeypatch: pytest.MonkeyPatch) -> None:
-    import gate.artefacts.junit as junit
+    from gate.artefacts import junit
 
     verdict = check(make_docks_frame(), policy_from(WAIVED_POLICY), today=TODAY)
     vif_fails = [f for f in verdict.findings if f.rule == "vif" and f.level == "fail"]
