@@ -201,3 +201,14 @@ def test_suggest_fixes_the_failing_segment_too() -> None:
     result = suggest(verdict)
     assert len(result.drops) == 1 and result.drops[0] in {"docks_in_use", "dock_pressure"}
     assert check(frame.drop(columns=list(result.drops)), segmented()).status == "pass"
+
+
+def test_summary_html_has_a_segment_overview_and_effective_rows() -> None:
+    from gate.artefacts.html_summary import summary_html
+
+    page = summary_html(check(zoned_frame(), segmented()))
+    assert 'id="sec-segments"' in page and "zone=harbour" in page
+    assert "Effective rows n/VIF" in page
+    assert "move its features apart" in page
+    plain = summary_html(check(zoned_frame().drop(columns="zone")))
+    assert 'id="sec-segments"' not in plain

@@ -96,6 +96,8 @@ def summary_html(verdict: Verdict) -> str:
         _Section("condition", "Condition indices", _condition_section(verdict)),
         _Section("dependencies", "Exact dependencies", _dependencies_section(verdict)),
         _Section("missing", "Missing values", _missing_section(verdict)),
+        *([_Section("segments", "Segments", _segments_section(verdict))]
+          if verdict.segments or verdict.policy.segments is not None else []),
         _Section("caution", "How to read this", f"<p class=\"caution\">{html.escape(CAUTION)}"
                  "</p>"),
     ]
@@ -421,10 +423,11 @@ def _features_section(verdict: Verdict) -> str:
         rows.append({"feature": name, **row, "result": text})
     columns = {"feature": "Feature", "vif": "VIF", "tolerance": "Tolerance (1/VIF)",
                "r2": "Auxiliary R\u00b2", "se": "SE inflation \u221aVIF",
+               "effective": "Effective rows n/VIF",
                "explained": "Explained mostly by (standardised coefficient)",
                "result": "Result"}
     table = _table(rows, columns, "features", stub="feature",
-                   right=["vif", "tolerance", "r2", "se"])
+                   right=["vif", "tolerance", "r2", "se", "effective"])
     from great_tables import loc, style
 
     table = table.tab_stubhead(label="Feature")
@@ -453,13 +456,15 @@ def _feature_row(verdict: Verdict, k: int) -> dict[str, str]:
         why = ("constant column" if any(dep.kind == "constant" and k in dep.terms
                                         for dep in d.dependencies)
                else "part of an exact dependency (see below)")
-        return {"vif": "\u221e", "tolerance": "0", "r2": "1", "se": "\u221e", "explained": why}
+        return {"vif": "\u221e", "tolerance": "0", "r2": "1", "se": "\u221e", "effective": "0",
+                "explained": why}
     helpers = ", ".join(f"{names[c]} ({_signed(b, 2)})" for c, b in d.explained_by(k))
     return {
         "vif": _num(vif, 2),
         "tolerance": _num(1.0 / vif, 4),
         "r2": _num(1.0 - 1.0 / vif, 4) if vif < 1e4 else f"{1.0 - 1.0 / vif:.7f}",
         "se": "\u00d7" + _num(math.sqrt(vif), 2),
+        "effective": f"{d.rows / vif:,.0f}",
         "explained": helpers or "\u2014",
     }
 
@@ -470,6 +475,7 @@ def _group_row(verdict: Verdict, g: int) -> dict[str, str]:
     levels = f"group of {result.df} dummies, reference level {group.reference}"
     if math.isnan(result.gvif):
         return {"vif": "undefined", "tolerance": "\u2014", "r2": "\u2014", "se": "\u2014",
+                "effective": "\u2014",
                 "explained": f"{levels}; a dummy is part of an exact dependency"}
     scaled = result.vif_scale
     return {
@@ -477,6 +483,7 @@ def _group_row(verdict: Verdict, g: int) -> dict[str, str]:
         "tolerance": _num(1.0 / scaled, 4),
         "r2": "\u2014",
         "se": "\u00d7" + _num(result.adjusted, 2),
+        "effective": f"{verdict.diagnostics.rows / scaled:,.0f}",
         "explained": f"{levels}; GVIF {_num(result.gvif, 3)}",
     }
 
@@ -652,3 +659,49 @@ def _missing_section(verdict: Verdict) -> str:
         f"Missing-value policy: {policy}. {t.rows_dropped:,} of {t.rows:,} rows were dropped; "
         "a row counts once even when several of its columns are missing.")
     return _fragment(table) + _hidden_note(len(shown), len(ordered), "columns")
+
+
+def _segments_section(verdict: Verdict) -> str:
+    """Segment overview (policy `segments`): one row per segment, failing ones first."""
+    order = {"fail": 0, "warn": 1, "pass": 2, "not_judged": 3}
+    segments = sorted(verdict.segments, key=lambda s: (order.get(s.status, 4), s.label))
+    rows: list[dict[str, Any]] = []
+    marks: dict[str, list[int]] = {"fail": [], "warn": []}
+    for pos, segment in enumerate(segments):
+        inner = segment.verdict
+        if inner is None:
+            rows.append({"segment": segment.label, "rows": f"{segment.rows_used:,}",
+                         "status": "not judged", "worst_vif": "\u2014", "effective": "\u2014",
+                         "detail": segment.reason or ""})
+            continue
+        finite = [float(v) for v in inner.diagnostics.vif if math.isfinite(float(v))]
+        worst = max(inner.diagnostics.vif.tolist(), default=1.0)
+        active = sorted((f for f in inner.findings if not f.waived and f.level in ("fail", "warn")),
+                        key=lambda f: f.level != "fail")
+        rows.append({
+            "segment": segment.label, "rows": f"{segment.rows_used:,}",
+            "status": inner.status,
+            "worst_vif": _num(worst, 2),
+            "effective": f"{inner.diagnostics.rows / max(finite, default=1.0):,.0f}"
+            if not math.isinf(worst) else "0",
+            "detail": active[0].message if active else "",
+        })
+        if inner.status in marks:
+            marks[inner.status].append(pos)
+    if not rows:
+        return _note("The policy segments the table, but no segment has rows.")
+    columns = {"segment": "Segment", "rows": "Rows used", "status": "Status",
+               "worst_vif": "Largest VIF", "effective": "Fewest effective rows (n/VIF)",
+               "detail": "Worst finding"}
+    table = _table(rows, columns, "segments", stub="segment",
+                   right=["rows", "worst_vif", "effective"])
+    table = table.tab_stubhead(label="Segment")
+    for kind, positions in marks.items():
+        table = _mark_rows(table, positions, kind, ["status"])
+    spec = verdict.policy.segments
+    table = table.tab_source_note(
+        "The whole gate runs per segment and on the whole table; the table's status is the "
+        "worst of them. Segments with fewer used rows than segments.min_rows "
+        f"({spec.min_rows if spec else '?'}) are reported, not judged. More rows only help a "
+        "coefficient if the new rows move its features apart.")
+    return _fragment(table)
