@@ -202,8 +202,14 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
     rt, route, factor_scale = _standardised_factor(gram, plan, factor)
     unit_scales = scales.copy()  # the scale that makes each column of rt unit length
     unit_scales[nc] = factor_scale
-    kept_local, relations = _rank_and_dependencies(rt, plan, full_rank=(
-        plan.cholesky is not None))
+    # Share of each column's uncentred norm that its spread carries: rounding in the data is
+    # relative to |x|, so a column far from zero resolves relations only to eps / share.
+    uncentred = np.sqrt(scales[nc] ** 2 + gram.weight_sum * gram.mean[nc] ** 2)
+    share = np.divide(scales[nc], uncentred, out=np.ones(nc.size), where=uncentred > 0)
+    along_intercept = np.divide(np.sqrt(gram.weight_sum) * gram.mean[nc], uncentred,
+                                out=np.zeros(nc.size), where=uncentred > 0)
+    kept_local, relations = _rank_and_dependencies(rt, plan, share, along_intercept,
+                                                   full_rank=plan.cholesky is not None)
 
     dependencies: list[Dependency] = [
         Dependency({int(j): 1.0}, float(gram.mean[j]), "constant", int(j))
@@ -316,11 +322,15 @@ Relation = tuple[int, IntArray, FloatArray]
 DUPLICATE_CANDIDATE_R = 1.0 - 1e-6
 
 
-def _rank_and_dependencies(rt: FloatArray, plan: ExactPassPlan, *, full_rank: bool
+def _rank_and_dependencies(rt: FloatArray, plan: ExactPassPlan, share: FloatArray,
+                           along_intercept: FloatArray, *, full_rank: bool
                            ) -> tuple[IntArray, list[Relation]]:
     """Kept columns, and each dependent column's relation (standardised units).
 
-    The rank is the numpy matrix_rank count of singular values above ``tolerance * mu_max``.
+    The rank is the numpy matrix_rank count of singular values above ``tolerance * mu_max``,
+    taken on the unit-length-scaled columns of [1, X] (numerics.md; Belsley, Kuh & Welsch 1980):
+    the factor [[1, along_intercept], [0, rt * share]]. So a shifted copy of a column far from
+    zero (``x + 3600`` for epoch seconds) counts as exact, as numpy.linalg.matrix_rank has it.
     Which columns count as dependent is then fixed by the column order, not by rounding, so the
     same table gives the same relations whatever the chunking: a column that duplicates an
     earlier one (up to sign and scale) is written as that duplicate; every other dependent column
@@ -331,16 +341,20 @@ def _rank_and_dependencies(rt: FloatArray, plan: ExactPassPlan, *, full_rank: bo
     q = rt.shape[1]
     if full_rank or q == 0:
         return np.arange(q), []
-    singular = sla.svd(rt, compute_uv=False, check_finite=False)
+    design = np.zeros((q + 1, q + 1))
+    design[0, 0] = 1.0
+    design[0, 1:] = along_intercept
+    design[1:, 1:] = rt * share
+    singular = sla.svd(design, compute_uv=False, check_finite=False)
     threshold = plan.tolerance * float(singular[0])
-    rank = int(np.count_nonzero(singular > threshold))
+    rank = max(int(np.count_nonzero(singular > threshold)) - 1, 0)  # without the intercept
     if rank == q:
         return np.arange(q), []
-    duplicates = _duplicates(rt, threshold)
-    found = _left_to_right(rt, threshold, skip={d for d, _, _ in duplicates},
+    duplicates = _duplicates(rt, threshold, share)
+    found = _left_to_right(rt, threshold, share, skip={d for d, _, _ in duplicates},
                            expected=q - rank - len(duplicates))
     if found is None:
-        kept, relations = _pivoted_dependencies(rt, rank)
+        kept, relations = _pivoted_dependencies(rt, rank, share)
     else:
         kept, relations = found[0], sorted(duplicates + found[1], key=lambda rel: rel[0])
     # Columns have unit length, so a term's share of the relation is |coefficient|: a term
@@ -355,11 +369,12 @@ def _without_negligible(coef: FloatArray, threshold: float) -> FloatArray:
     return np.where(small, 0.0, coef)
 
 
-def _duplicates(rt: FloatArray, threshold: float) -> list[Relation]:
+def _duplicates(rt: FloatArray, threshold: float, share: FloatArray) -> list[Relation]:
     """Columns equal to an earlier column up to sign (unit columns: z_j = +-z_i).
 
-    The pair's smaller singular value is ||z_j -+ z_i|| / sqrt(2); it is measured on the factor
-    columns directly (not as 1 - |r|, which would lose half the digits).
+    The pair [w_i z_i, w_j z_j] (w = share) has smaller singular value about
+    w_i w_j ||z_j -+ z_i|| / sqrt(w_i^2 + w_j^2); the distance is measured on the factor columns
+    directly (not as 1 - |r|, which would lose half the digits).
     """
     gram = rt.T @ rt
     candidates = np.argwhere(np.triu(np.abs(gram) >= DUPLICATE_CANDIDATE_R, 1))
@@ -368,15 +383,17 @@ def _duplicates(rt: FloatArray, threshold: float) -> list[Relation]:
         if j in found or i in found:
             continue  # i is itself a duplicate: its own original, earlier, is checked too
         sign = 1.0 if gram[i, j] > 0 else -1.0
-        if np.linalg.norm(rt[:, j] - sign * rt[:, i]) / np.sqrt(2.0) <= threshold:
+        weight = share[i] * share[j] / np.hypot(share[i], share[j])
+        if np.linalg.norm(rt[:, j] - sign * rt[:, i]) * weight <= threshold:
             found[j] = (j, np.array([i], dtype=np.intp), np.array([sign]))
     return list(found.values())
 
 
-def _left_to_right(rt: FloatArray, threshold: float, *, skip: set[int], expected: int
-                   ) -> tuple[IntArray, list[Relation]] | None:
+def _left_to_right(rt: FloatArray, threshold: float, share: FloatArray, *, skip: set[int],
+                   expected: int) -> tuple[IntArray, list[Relation]] | None:
     """Greedy left-to-right basis: a column is dependent when its distance from the span of the
-    kept columns before it (the diagonal of their QR factor) is at most ``threshold``.
+    kept columns before it (the diagonal of their QR factor), times its share, is at most
+    ``threshold`` (scaling the earlier columns does not move their span).
 
     A dependent column is deleted from the factorisation before the next one is judged
     (``scipy.linalg.qr_delete``, Givens rotations, O(q^2) each), so rounding noise in its
@@ -389,7 +406,8 @@ def _left_to_right(rt: FloatArray, threshold: float, *, skip: set[int], expected
     kept_before: list[int] = []  # for each dependent column: how many kept columns precede it
     for column in columns:
         position = len(kept)
-        if position < r_factor.shape[0] and abs(r_factor[position, position]) > threshold:
+        if position < r_factor.shape[0] and \
+                abs(r_factor[position, position]) * share[column] > threshold:
             kept.append(column)
             continue
         dependent.append(column)
@@ -409,16 +427,20 @@ def _left_to_right(rt: FloatArray, threshold: float, *, skip: set[int], expected
     return np.asarray(kept, dtype=np.intp), relations
 
 
-def _pivoted_dependencies(rt: FloatArray, rank: int) -> tuple[IntArray, list[Relation]]:
+def _pivoted_dependencies(rt: FloatArray, rank: int, share: FloatArray
+                          ) -> tuple[IntArray, list[Relation]]:
+    """Column-pivoted QR of the share-weighted factor; coefficients back in rt's units
+    (w_d z_d = sum c_k w_k z_k  ->  z_d = sum (c_k w_k / w_d) z_k)."""
     q = rt.shape[1]
-    _, rp, pivot = sla.qr(rt, pivoting=True, mode="economic", check_finite=False)
+    _, rp, pivot = sla.qr(rt * share, pivoting=True, mode="economic", check_finite=False)
     lead = rp[:rank, :rank]
     kept = np.sort(pivot[:rank])
-    relations: list[Relation] = [
-        (int(pivot[rank + i]), kept, _reorder(
-            sla.solve_triangular(lead, rp[:rank, rank + i], check_finite=False), pivot[:rank]))
-        for i in range(q - rank)
-    ]
+    relations: list[Relation] = []
+    for i in range(q - rank):
+        dependent = int(pivot[rank + i])
+        coef = _reorder(sla.solve_triangular(lead, rp[:rank, rank + i], check_finite=False),
+                        pivot[:rank])
+        relations.append((dependent, kept, coef * share[kept] / share[dependent]))
     return kept, relations
 
 
