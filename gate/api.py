@@ -197,6 +197,10 @@ def _check_rows(design: Design, rows: int, weight_sum: float, name: str) -> None
     if weight_sum <= 0.0 and counts.used > 0:
         raise DesignError(f"{name}: weight column '{design.weight}' sums to zero over the used "
                           "rows; give some rows a positive weight")
+    if rows < 2 and design.weight is not None and rows < counts.used:
+        raise DesignError(f"{name}: only {rows} row{'s' if rows != 1 else ''} of "
+                          f"{counts.used} used rows {'has' if rows == 1 else 'have'} a positive "
+                          f"weight in column '{design.weight}'; at least 2 are needed")
     if rows < 2:
         worst = max(counts.missing.items(), key=lambda kv: kv[1], default=None)
         why = f"; column '{worst[0]}' has {worst[1]} missing" if worst else ""

@@ -310,3 +310,16 @@ def test_output_folder_is_a_file(run_cli: CliRunner, write_table: Writer, tmp_pa
     blocker = tmp_path / "out"
     blocker.write_text("a file where the folder should be")
     assert_unusable(run_cli(check_argv(table, blocker)), str(blocker))
+
+
+def test_fewer_than_two_positive_weights(run_cli: CliRunner, write_table: Writer,
+                                         write_policy: Writer, out: Path) -> None:
+    frame = sample_frame().assign(trip_weight=[0.0] * 29 + [1.5])
+    table = write_table(frame)
+    policy = write_policy("""
+        policy_version: 1
+        name: fleet
+        columns: {weight: trip_weight}
+    """)
+    line = assert_unusable(run_cli(check_argv(table, out, policy)), str(table), "trip_weight")
+    assert "positive weight" in line and "missing" not in line
