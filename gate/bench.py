@@ -297,9 +297,9 @@ def bench_dask(table: Path, folder: Path, repeat: int, sizes: Sizes) -> dict[str
 
     _progress("dask: starting a local cluster (2 worker processes, 1 thread each)")
     start = time.perf_counter()
-    cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                           dashboard_address=None)
-    client = Client(cluster)
+    cluster = LocalCluster(  # type: ignore[no-untyped-call]
+        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None)
+    client = Client(cluster)  # type: ignore[no-untyped-call]
     client.wait_for_workers(2)
     startup = time.perf_counter() - start
     try:
@@ -311,7 +311,7 @@ def bench_dask(table: Path, folder: Path, repeat: int, sizes: Sizes) -> dict[str
             local_runs.append(run(gate_command(table, local_out)))
             dask_runs.append(run(gate_command(table, dask_out, *dask_extra)))
     finally:
-        client.close()
+        client.close()  # type: ignore[no-untyped-call]
         cluster.close()
     difference = _max_relative_difference(local_out / "verdict.json", dask_out / "verdict.json")
     local_seconds = min(r.seconds for r in local_runs)

@@ -140,7 +140,6 @@ def _run_check(args: argparse.Namespace) -> int:
     from gate.api import check
     from gate.artefacts.terminal import summary_lines
     from gate.outputs import write_check_outputs
-
     from gate.progress import terminal_progress
 
     if args.scheduler and args.engine != "dask":

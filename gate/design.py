@@ -16,9 +16,9 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
 import numpy as np
-from numpy.typing import NDArray
 import pyarrow as pa
 import pyarrow.compute as pc
+from numpy.typing import NDArray
 
 from gate.errors import DesignError, TableError
 from gate.policy import Policy

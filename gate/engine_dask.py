@@ -23,7 +23,7 @@ from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from types import TracebackType
-from typing import Any, TypeVar
+from typing import Any, Self, TypeVar
 
 import pyarrow as pa
 
@@ -37,6 +37,7 @@ from gate.table import (
     PARQUET_BUFFER_BYTES,
     SUFFIXES,
     ArrowSource,
+    Column,
     CsvSource,
     DaskFrameSource,
     ParquetSource,
@@ -215,6 +216,17 @@ class _PartitionSource:
         self.part = part
         self.name = name
 
+    @property
+    def columns(self) -> tuple[Column, ...]:
+        return ()  # not needed by the levels pass
+
+    @property
+    def row_count(self) -> int | None:
+        return self.part.rows
+
+    def sha256(self) -> None:
+        return None
+
     def chunks(self, columns: Sequence[str], chunk_rows: int = DEFAULT_CHUNK_ROWS
                ) -> Iterator[pa.Table]:
         return self.part.tables(columns, chunk_rows)
@@ -237,7 +249,7 @@ class DaskEngine:
         self._client: Any = None
         self._owned: list[Any] = []
 
-    def __enter__(self) -> DaskEngine:
+    def __enter__(self) -> Self:
         try:
             from distributed import Client, LocalCluster
         except ImportError:
@@ -254,12 +266,13 @@ class DaskEngine:
                 self._client = get_client()
                 return self
             except ValueError:
-                cluster = LocalCluster(n_workers=LOCAL_WORKERS, threads_per_worker=1,
-                                       processes=True, dashboard_address=None)
+                cluster = LocalCluster(  # type: ignore[no-untyped-call]
+                    n_workers=LOCAL_WORKERS, threads_per_worker=1, processes=True,
+                    dashboard_address=None)
                 self._owned.append(cluster)
                 scheduler = cluster
         try:
-            self._client = Client(scheduler, timeout="20s")
+            self._client = Client(scheduler, timeout="20s")  # type: ignore[no-untyped-call]
         except OSError as exc:
             raise TableError(f"cannot reach the Dask scheduler at {scheduler} ({exc}); "
                              "check --scheduler ADDRESS") from None
@@ -345,7 +358,7 @@ class DaskEngine:
         from distributed import as_completed
 
         try:
-            for future in as_completed(futures):
+            for future in as_completed(futures):  # type: ignore[no-untyped-call]
                 counter.advance(rows_of(future.result()))
         finally:
             counter.finish()

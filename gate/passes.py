@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from types import TracebackType
-from typing import Protocol
+from typing import Protocol, Self
 
 from gate.design import (
     DesignPlan,
@@ -39,7 +39,7 @@ ProgressFactory = Callable[[str, "int | None"], RowCounter]
 class Engine(Protocol):
     """Runs the passes over a source: the local engine below, or the Dask engine."""
 
-    def __enter__(self) -> Engine: ...
+    def __enter__(self) -> Self: ...
 
     def __exit__(self, kind: type[BaseException] | None, exc: BaseException | None,
                  tb: TracebackType | None) -> None: ...
@@ -57,7 +57,7 @@ class Engine(Protocol):
 class LocalEngine:
     """The passes in this process (the default)."""
 
-    def __enter__(self) -> LocalEngine:
+    def __enter__(self) -> Self:
         return self
 
     def __exit__(self, kind: type[BaseException] | None, exc: BaseException | None,

@@ -114,7 +114,7 @@ def _si(value: float) -> str:
 def _duration(seconds: float) -> str:
     if seconds < 60:
         return f"{seconds:.0f} s"
-    minutes, secs = divmod(int(round(seconds)), 60)
+    minutes, secs = divmod(round(seconds), 60)
     if minutes < 60:
         return f"{minutes} min {secs:02d} s"
     hours, minutes = divmod(minutes, 60)
