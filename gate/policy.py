@@ -12,14 +12,29 @@ import hashlib
 import json
 from importlib import resources
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, field_validator
+from pydantic import (
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    PrivateAttr,
+    ValidationError,
+    field_validator,
+)
 
 from gate.errors import PolicyError
 
-Level = Literal["fail", "warn", "off"]
+
+
+def _yaml_off(value: Any) -> Any:
+    """YAML 1.1 reads a bare `off` as false; the policy means the level "off"."""
+    return "off" if value is False else value
+
+
+Level = Annotated[Literal["fail", "warn", "off"], BeforeValidator(_yaml_off)]
 RuleName = Literal["pairwise_correlation", "vif", "condition_number", "rank_deficiency"]
 RULES: tuple[str, ...] = ("pairwise_correlation", "vif", "condition_number", "rank_deficiency")
 

@@ -340,3 +340,11 @@ def test_meta_test_helpers_see_every_model() -> None:
     models = {model.__name__ for _, model in walk_models()}
     assert {"Policy", "ColumnSelection", "Limits", "VifLimit", "CorrelationLimit",
             "ConditionLimit", "RankLimit", "Waiver"} <= models
+
+
+def test_bare_yaml_off_means_level_off() -> None:
+    # YAML 1.1 (PyYAML) reads a bare `off` as False; interface.md documents `level: off`.
+    from gate.policy import parse_policy
+
+    policy = parse_policy("policy_version: 1\nname: x\nlimits:\n  vif: {max: 5, level: off}\n")
+    assert policy.limits.vif.level == "off"
