@@ -1,0 +1,47 @@
+"""Smoke run of the benchmark script (`python -m gate.bench --quick`): it runs end to end and
+writes the figures as JSON with the documented shape. Timings are never asserted here."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+
+@pytest.mark.slow
+def test_quick_benchmark_writes_every_figure(tmp_path: Path) -> None:
+    report_path = tmp_path / "bench.json"
+    result = subprocess.run([sys.executable, "-m", "gate.bench", "--quick", "--json",
+                             str(report_path)], capture_output=True, text=True, timeout=600)
+    assert result.returncode == 0, result.stderr[-3000:]
+    report = json.loads(report_path.read_text())
+    assert report["mode"] == "quick"
+    machine = report["machine"]
+    assert machine["cores"] >= 1 and isinstance(machine["blas"], list)
+    results = report["results"]
+    assert set(results) == {"main", "peer", "stream", "wide", "dask"}
+    for key in ("main", "stream", "wide"):
+        figures = results[key]
+        assert figures["gate_seconds"] > 0 and figures["floor_seconds"] > 0
+        assert figures["ratio"] == pytest.approx(figures["gate_seconds"]
+                                                 / figures["floor_seconds"])
+        assert figures["gate_peak_rss_mb"] > 0
+    assert results["stream"]["target_peak_rss_mb"] == 600
+    peer = results["peer"]
+    assert peer["sampled_columns"] < peer["columns"]  # sampled and extrapolated
+    assert peer["speedup_in_process"] > 0
+    assert peer["max_relative_vif_difference_on_sample"] < 1e-8  # same VIFs as statsmodels
+    dask = results["dask"]
+    assert dask["cluster_startup_seconds"] > 0 and dask["ratio"] > 0
+    assert dask["max_relative_difference"] < 1e-10
+    assert "ratio" in result.stdout and "machine:" in result.stdout
+
+
+def test_bench_help_runs_without_heavy_work() -> None:
+    result = subprocess.run([sys.executable, "-m", "gate.bench", "--help"],
+                            capture_output=True, text=True, timeout=60)
+    assert result.returncode == 0
+    assert "--quick" in result.stdout and "--json" in result.stdout
