@@ -350,8 +350,12 @@ def _rank_and_dependencies(rt: FloatArray, plan: ExactPassPlan, share: FloatArra
     rank = max(int(np.count_nonzero(singular > threshold)) - 1, 0)  # without the intercept
     if rank == q:
         return np.arange(q), []
-    duplicates = _duplicates(rt, threshold, share)
-    found = _left_to_right(rt, threshold, share, skip={d for d, _, _ in duplicates},
+    # The per-column decisions below cut in the middle of the gap the count found (geometric
+    # mean of the smallest kept and the largest dropped singular value), not at its edge, so
+    # rounding noise (which differs with the chunking) cannot flip them.
+    cut = float(np.sqrt(singular[rank] * max(singular[rank + 1], EPS * singular[0])))
+    duplicates = _duplicates(rt, cut, share)
+    found = _left_to_right(rt, cut, share, skip={d for d, _, _ in duplicates},
                            expected=q - rank - len(duplicates))
     if found is None:
         kept, relations = _pivoted_dependencies(rt, rank, share)
@@ -397,15 +401,23 @@ def _left_to_right(rt: FloatArray, threshold: float, share: FloatArray, *, skip:
 
     A dependent column is deleted from the factorisation before the next one is judged
     (``scipy.linalg.qr_delete``, Givens rotations, O(q^2) each), so rounding noise in its
-    residual never leaks into later decisions. None when the count differs from ``expected``.
+    residual never leaks into later decisions. Once the kept columns reach the rank, every later
+    column is dependent (checked by its residual, all at once: with n << p most columns are).
+    None when the count differs from ``expected``.
     """
     columns = [k for k in range(rt.shape[1]) if k not in skip]
+    full = len(columns) - expected  # how many columns the rank says are kept
     q_factor, r_factor = sla.qr(rt[:, columns], check_finite=False)
     kept: list[int] = []
     dependent: list[int] = []
     kept_before: list[int] = []  # for each dependent column: how many kept columns precede it
-    for column in columns:
+    for index, column in enumerate(columns):
         position = len(kept)
+        if position == full:
+            rest = columns[index:]
+            dependent.extend(rest)
+            kept_before.extend([position] * len(rest))
+            break
         if position < r_factor.shape[0] and \
                 abs(r_factor[position, position]) * share[column] > threshold:
             kept.append(column)
@@ -419,6 +431,9 @@ def _left_to_right(rt: FloatArray, threshold: float, share: FloatArray, *, skip:
     k = len(kept)
     lead = r_factor[:k, :k]
     coordinates = q_factor[:, :k].T @ rt[:, dependent]
+    residual = rt[:, dependent] - q_factor[:, :k] @ coordinates
+    if np.any(np.linalg.norm(residual, axis=0) * share[dependent] > threshold):
+        return None  # the rank and the greedy order disagree: let pivoted QR decide
     relations: list[Relation] = []
     for pos, (column, before) in enumerate(zip(dependent, kept_before)):
         coef = sla.solve_triangular(lead[:before, :before], coordinates[:before, pos],
