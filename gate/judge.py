@@ -199,7 +199,9 @@ def _apply_waivers(raw: list[Finding], policy: Policy, today: dt.date
         for pos, finding in enumerate(findings):
             if finding.rule != waiver.rule or finding.waived or finding.level == "info":
                 continue
-            if not set(finding.features) <= listed:
+            # A finding naming no feature (n <= p, a diffuse condition index) is not about
+            # the listed features: the empty set would match every waiver of its rule.
+            if not finding.features or not set(finding.features) <= listed:
                 continue
             covered += 1
             if not expired:

@@ -242,3 +242,15 @@ def test_exit_codes_and_raise_for_status() -> None:
                                            {"level": "off"}})
     assert passing.status == "pass" and passing.raise_for_status() is passing
     assert math.isfinite(passing.vif()["outdoor_c"] or math.nan)
+
+
+def test_a_featureless_finding_is_not_waived_by_a_feature_waiver() -> None:
+    # The n <= p finding (and a diffuse condition index) names no feature; a waiver that lists
+    # features must not silently cover it (the empty set is a subset of every list).
+    rng = np.random.default_rng(5)
+    frame = pd.DataFrame(rng.normal(size=(4, 6)), columns=[f"meter_{k}" for k in range(6)])
+    later = TODAY + dt.timedelta(days=30)
+    verdict = run(frame, waivers=[waiver("rank_deficiency", ["meter_4", "meter_5"], later)])
+    plain = [f for f in of_rule(verdict, "rank_deficiency") if not f.features]
+    assert len(plain) == 1 and not plain[0].waived
+    assert verdict.status == "fail"
