@@ -338,3 +338,23 @@ def test_chunk_rows_does_not_change_the_verdict(docks_frame: pd.DataFrame, write
     a, b = documents
     assert [f["message"] for f in a["findings"]] == [f["message"] for f in b["findings"]]
     assert a["status"] == b["status"]
+
+
+def test_failed_write_keeps_the_old_verdict_and_no_temp_file(
+        docks_frame: pd.DataFrame, clean_frame: pd.DataFrame, write_table: Writer,
+        run_cli: CliRunner, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from gate.artefacts import files
+
+    out = tmp_path / "out"
+    assert run_cli(["check", write_table(clean_frame, "ok.parquet"), "--out", out]).code == 0
+    before = (out / "verdict.json").read_bytes()
+
+    def refuse(src: str, dst: str) -> None:
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(files.os, "replace", refuse)
+    result = run_cli(["check", write_table(docks_frame, "bad.parquet"), "--out", out])
+    assert result.code == 2 and "Traceback" not in result.err
+    assert len(result.err_lines) == 1 and str(out) in result.err
+    assert (out / "verdict.json").read_bytes() == before  # readers never see a partial file
+    assert not [p.name for p in out.iterdir() if p.name.endswith(".tmp")]
