@@ -12,6 +12,7 @@ never becomes a spurious constant column.
 from __future__ import annotations
 
 import fnmatch
+import math
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
@@ -205,7 +206,19 @@ def _sorted_levels(source: TableSource, seen: dict[str, set[str]]
                    ) -> dict[str, tuple[str, ...]]:
     for name, values in seen.items():
         check_level_count(source.name, name, len(values))
-    return {n: tuple(sorted(values)) for n, values in seen.items()}
+    return {n: tuple(sorted(values, key=_level_order(values))) for n, values in seen.items()}
+
+
+def _level_order(values: set[str]) -> Callable[[str], tuple[float, str]]:
+    """Levels that all read as numbers (codes such as 2, 3, 10) sort by value, not as text
+    (where '10' < '2' would make 10 the reference); other levels sort as text."""
+    try:
+        numeric = all(math.isfinite(float(value)) for value in values)
+    except ValueError:
+        numeric = False
+    if not numeric:
+        return lambda value: (0.0, value)
+    return lambda value: (float(value), value)
 
 
 def _as_text(column: pa.ChunkedArray | pa.Array) -> pa.ChunkedArray | pa.Array:

@@ -195,3 +195,15 @@ def test_pyarrow_table_is_accepted() -> None:
     verdict = gate.check(table, policy())
     assert "depot=west" in verdict.features
     assert verdict.table.sha256 is None  # no file bytes to hash
+
+
+def test_numeric_codes_sort_by_value_for_the_reference() -> None:
+    # '10' < '2' as text; as codes 2 < 3 < 10, so 2 is the first sorted level (the reference).
+    frame = fleet().assign(axle_count=np.tile([2, 3, 10], 20),
+                           load_class=np.tile([2.5, 10.0, 3.0], 20),
+                           depot_code=np.tile(["B7", "A10", "A9"], 20))
+    verdict = run(frame, columns={"exclude": ["vehicle_id", "depot"],
+                                  "categorical": ["axle_count", "load_class", "depot_code"]})
+    references = {g.column: g.reference for g in verdict.design.groups}
+    assert references == {"axle_count": "2", "load_class": "2.5", "depot_code": "A10"}
+    assert "axle_count=10" in verdict.features and "axle_count=3" in verdict.features
