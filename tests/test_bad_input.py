@@ -323,3 +323,18 @@ def test_fewer_than_two_positive_weights(run_cli: CliRunner, write_table: Writer
     """)
     line = assert_unusable(run_cli(check_argv(table, out, policy)), str(table), "trip_weight")
     assert "positive weight" in line and "missing" not in line
+
+
+def test_policy_path_is_a_folder(run_cli: CliRunner, write_table: Writer, tmp_path: Path,
+                                 out: Path) -> None:
+    table = write_table(sample_frame())
+    folder = tmp_path / "policies"
+    folder.mkdir()
+    assert_unusable(run_cli(check_argv(table, out, folder)), str(folder))
+
+
+def test_csv_with_only_a_header(run_cli: CliRunner, tmp_path: Path, out: Path) -> None:
+    table = tmp_path / "fleet.csv"
+    table.write_text("odometer_km,engine_hours\n")
+    line = assert_unusable(run_cli(check_argv(table, out)), str(table))
+    assert "2" in line
