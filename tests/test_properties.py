@@ -277,3 +277,18 @@ def test_exact_structure_is_found_and_stable(seed: int, rows: int, base: int, de
         [(sorted(dep.terms), dep.expressed, dep.kind) for dep in d.dependencies]
     finite = np.isfinite(d.vif)
     assert_close(chunked.vif[finite], d.vif[finite], rtol=1e-8)
+
+
+@PROPERTY_SETTINGS
+@given(frame=frames, weight_seed=st.integers(0, 2**32 - 1))
+def test_integer_weights_equal_repeated_rows(frame: pd.DataFrame, weight_seed: int) -> None:
+    # Weighted moments with integer weights are the moments of the rows repeated that often.
+    weights = np.random.default_rng(weight_seed).integers(0, 4, len(frame))
+    assume(np.count_nonzero(weights) > frame.shape[1] + 1)
+    weighted = check(frame.assign(row_weight=weights.astype(float)),
+                     columns={"weight": "row_weight"}).diagnostics
+    repeated = check(frame.loc[frame.index.repeat(weights)].reset_index(drop=True)).diagnostics
+    assert weighted.rank == repeated.rank
+    assert_close(weighted.vif, repeated.vif, rtol=1e-9)
+    assert_close(weighted.condition.indices, repeated.condition.indices, rtol=1e-9)
+    assert weighted.rows == int(np.count_nonzero(weights))
