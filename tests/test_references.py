@@ -327,6 +327,38 @@ def test_gvif_matches_direct_determinant_formula(record_accuracy: Recorder) -> N
     assert gvif_json["gvif_adjusted"] == pytest.approx(expected ** (1 / 6), rel=1e-10)
 
 
+def test_gvif_matches_mpmath_determinants(record_accuracy: Recorder) -> None:
+    # Fox & Monette (1992) eq. (10), GVIF = det(R11) det(R22) / det(R), evaluated in 50-digit
+    # mpmath arithmetic (correlations from exact centred sums).
+    frame = _weather_frame(rows=300)
+    verdict = run_check(frame, columns={"categorical": ["weather_kind"]})
+    design = dummy_design(frame, ["weather_kind"])
+    x = design.to_numpy()
+    n, p = x.shape
+    inside = [k for k, c in enumerate(design.columns) if c.startswith("weather_kind=")]
+    outside = [k for k in range(p) if k not in inside]
+    with mpmath.workdps(50):
+        cols = [[mpmath.mpf(float(v)) for v in x[:, j]] for j in range(p)]
+        centred = [[v - mpmath.fsum(c) / n for v in c] for c in cols]
+        corr = mpmath.matrix(p, p)
+        for i in range(p):
+            for j in range(i, p):
+                corr[i, j] = corr[j, i] = mpmath.fsum(a * b for a, b in zip(centred[i],
+                                                                            centred[j]))
+        norms = [mpmath.sqrt(corr[i, i]) for i in range(p)]
+        for i in range(p):
+            for j in range(p):
+                corr[i, j] = corr[i, j] / (norms[i] * norms[j])
+
+        def det(index: list[int]) -> Any:
+            return mpmath.det(mpmath.matrix([[corr[i, j] for j in index] for i in index]))
+
+        expected = det(inside) * det(outside) / det(list(range(p)))
+        error = abs((mpmath.mpf(verdict.diagnostics.groups[0].gvif) - expected) / expected)
+    record_accuracy("GVIF vs mpmath 50-digit determinants", float(error))
+    assert float(error) < 1e-9
+
+
 def test_gvif_does_not_depend_on_the_reference_level() -> None:
     # Fox & Monette (1992): GVIF is invariant to the coding of the group's columns.
     frame = _weather_frame()
