@@ -489,3 +489,23 @@ def test_policy_tolerance_matches_numpy_svd_rank(tolerance: float | None) -> Non
         # valve_c's share is far below the tolerance: not part of the relation
         assert names == {"pump_a", "pump_b", "flow_total"}
         assert verdict.vif()["valve_c"] is not None
+
+
+def test_exact_pass_route_matches_mpmath_on_longley(longley: pd.DataFrame,
+                                                    record_accuracy: Recorder) -> None:
+    # A copy of ARMED makes the design rank deficient, so the TSQR exact pass runs; the other
+    # features' VIFs are exact on the design with the copy dropped, i.e. Longley's own VIFs.
+    # Reference: mpmath at 50 digits on the six Longley regressors.
+    frame = longley[LONGLEY_REGRESSORS].assign(ARMED_COPY=longley["ARMED"])
+    verdict = run_check(frame)
+    assert verdict.diagnostics.route == "gram+tsqr"
+    (dep,) = verdict.diagnostics.dependencies
+    assert dep.kind == "duplicate"
+    vif_ref, _ = _mp_longley_reference(longley[LONGLEY_REGRESSORS].to_numpy())
+    with mpmath.workdps(50):
+        errors = [abs((mpmath.mpf(float(verdict.diagnostics.vif[k])) - vif_ref[k]) / vif_ref[k])
+                  for k, name in enumerate(LONGLEY_REGRESSORS) if name != "ARMED"]
+    record_accuracy("Longley VIFs via the exact (TSQR) pass vs mpmath 50-digit",
+                    float(max(errors)))
+    assert float(max(errors)) < 1e-9
+    assert verdict.vif()["ARMED"] is None and verdict.vif()["ARMED_COPY"] is None
