@@ -421,6 +421,17 @@ def finish_design(plan: DesignPlan, gram: CentredGram, counts: RowCounts) -> Des
     if not features:
         raise DesignError(f"{plan.table}: no feature column is left after encoding; "
                           "check columns.include/exclude")
+    seen: set[str] = set()
+    clash = None
+    for name in features:
+        if name in seen:
+            clash = name
+            break
+        seen.add(name)
+    if clash is not None:  # e.g. a column named 'kind=rain' beside categorical 'kind'
+        raise DesignError(f"{plan.table}: two design columns would both be named '{clash}' "
+                          "(a column name equals a '<column>=<level>' dummy); rename the "
+                          "column or exclude it")
     return Design(tuple(features), tuple(groups), tuple(selection), plan.weight, counts,
                   tuple(notes))
 

@@ -338,3 +338,12 @@ def test_csv_with_only_a_header(run_cli: CliRunner, tmp_path: Path, out: Path) -
     table.write_text("odometer_km,engine_hours\n")
     line = assert_unusable(run_cli(check_argv(table, out)), str(table))
     assert "2" in line
+
+
+def test_column_name_clashes_with_a_dummy(run_cli: CliRunner, write_table: Writer,
+                                          out: Path) -> None:
+    frame = sample_frame().assign(depot=["north", "south", "west"] * 10)
+    frame["depot=south"] = np.arange(30.0)
+    table = write_table(frame)
+    line = assert_unusable(run_cli(check_argv(table, out)), str(table), "depot=south")
+    assert "rename" in line
