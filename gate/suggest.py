@@ -78,6 +78,9 @@ Priority = tuple[int, int]
 EXACT_LIMIT = 20
 #: Nodes the exact search may visit before it stops and falls back to the greedy result.
 MAX_NODES = 20_000
+#: Minimum-size sets compared by the tie-break before the exact search stops enumerating
+#: (branches are tried in tie-break order, so the first ones found are the likeliest winners).
+MAX_TIES = 64
 #: Relative singular-value tolerance when ranking the (clean, rounded) dependency coefficients.
 NULL_SPACE_TOLERANCE = 1e-6
 GLOB_SPECIAL = {"*": "[*]", "?": "[?]", "[": "[[]"}
@@ -108,7 +111,7 @@ class Suggestion:
     kept: tuple[str, ...]  # final design features
     method: Literal["none", "exact", "greedy"]
     candidates: tuple[str, ...]
-    nodes: int  # feasibility evaluations by the search (excluding the dependency step)
+    nodes: int  # search-tree nodes (exact) or steps (greedy) visited
     seconds: float
     exhaustive: bool  # True when the size is proven minimal
     lower_bound: int  # proven lower bound on the number of drops
@@ -116,6 +119,7 @@ class Suggestion:
     remaining: tuple[str, ...]  # breaches left when not solved
     loss: float
     notes: tuple[str, ...] = ()
+    evaluations: int = 0  # candidate sets whose limits were evaluated (p x p or m x m work)
 
     def lines(self) -> list[str]:
         """Terminal report: one line per step, then the final feature list."""
@@ -125,7 +129,8 @@ class Suggestion:
                          f"least {self.lower_bound}"}[self.method]
         head = ("no drop needed: every fail-level limit passes" if not self.drops and
                 self.solved else f"drop {len(self.drops)} unit(s)")
-        out = [f"{head} ({how}; {self.nodes} node(s), {self.seconds:.3f} s)"]
+        out = [(f"{head} ({how}; {self.nodes} node(s), {self.evaluations} evaluation(s), "
+               f"{self.seconds:.3f} s)")]
         for number, step in enumerate(self.steps, 1):
             out.append(
                 f"  {number}. drop {step.feature}: {step.reason}; max VIF "
@@ -146,6 +151,7 @@ class Suggestion:
         return {
             "drops": list(self.drops), "kept": list(self.kept), "method": self.method,
             "candidates": list(self.candidates), "nodes": self.nodes,
+            "evaluations": self.evaluations,
             "seconds": self.seconds, "exhaustive": self.exhaustive,
             "lower_bound": self.lower_bound, "solved": self.solved,
             "remaining": list(self.remaining), "loss": self.loss, "notes": list(self.notes),
@@ -187,8 +193,20 @@ class _State:
     explainers: dict[str, list[str]] = field(default_factory=dict)
 
 
+@dataclass(frozen=True)
+class _Reduced:
+    """Schur complement of the always-kept columns, over the candidate columns."""
+
+    base: frozenset[str]
+    candidates: frozenset[str]
+    columns: IntArray
+    block: FloatArray
+
+
 class _Problem:
     """The limits of one design, evaluated on any subset of its units."""
+
+    fast: _Reduced | None = None
 
     def __init__(self, label: str, diagnostics: Diagnostics, design: Design, policy: Policy,
                  today: dt.date) -> None:
@@ -236,14 +254,7 @@ class _Problem:
 
     def factor(self, kept: IntArray) -> FloatArray | None:
         """Upper Cholesky factor of C_KK, or None when it is not positive definite."""
-        if kept.size == 0:
-            return np.zeros((0, 0))
-        try:
-            r = sla.cholesky(self.d.correlation[np.ix_(kept, kept)], lower=False,
-                             check_finite=False)
-        except (np.linalg.LinAlgError, ValueError):
-            return None
-        return np.asarray(r) if np.all(np.isfinite(r)) and np.all(np.diag(r) > 0) else None
+        return self.factor_of(self.d.correlation[np.ix_(kept, kept)])
 
     def constant_kept(self, dropped: frozenset[str]) -> list[str]:
         return [self.column_unit[j] for j in np.flatnonzero(self.constant)
@@ -251,29 +262,92 @@ class _Problem:
 
     # evaluation
 
-    def evaluate(self, dropped: frozenset[str]) -> _State:
-        """Fail-level breaches of the design without the ``dropped`` units."""
+    def prepare(self, base: frozenset[str], candidates: Iterable[str]) -> None:
+        """Precompute the Schur complement of the columns every candidate set keeps.
+
+        With F the kept non-candidate columns and S the kept candidate columns,
+        [C_KK^-1]_SS = (C_SS - C_SF C_FF^-1 C_FS)^-1 (block inverse), so VIFs and GVIFs of the
+        candidates -- the only units that can breach, since dropping never raises an
+        inflation -- come from the m x m matrix Z = C_cc - Y'Y, Y = R_F^-T C_Fc, whatever p is.
+        The condition number needs the whole factor, so it keeps the full route.
+        """
+        self.fast = None
+        if self.cond_max is not None:
+            return
+        chosen = frozenset(candidates)
+        kept = self.kept_columns(base)
+        movable = np.asarray([c for c in kept if self.column_unit[c] in chosen], dtype=np.intp)
+        fixed = np.asarray([c for c in kept if self.column_unit[c] not in chosen], dtype=np.intp)
+        r_fixed = self.factor(fixed)
+        if r_fixed is None:
+            return
+        block = self.d.correlation[np.ix_(movable, movable)]
+        if fixed.size and movable.size:
+            y = sla.solve_triangular(r_fixed, self.d.correlation[np.ix_(fixed, movable)],
+                                     trans="T", check_finite=False)
+            block = block - y.T @ y
+        self.fast = _Reduced(base, chosen, movable, block)
+
+    def evaluate(self, dropped: frozenset[str], *, full: bool = False) -> _State:
+        """Fail-level breaches of the design without the ``dropped`` units.
+
+        ``full`` also reports the inflation of every kept unit (for the step report); otherwise,
+        after :meth:`prepare`, only candidates are evaluated (nothing else can breach).
+        """
         constants = self.constant_kept(dropped)
-        kept = self.kept_columns(dropped)
-        r = self.factor(kept)
+        fast = self.fast
+        if (not full and fast is not None and dropped >= fast.base
+                and dropped - fast.base <= fast.candidates):
+            keep_pos = np.asarray([k for k, c in enumerate(fast.columns)
+                                   if self.column_unit[c] not in dropped], dtype=np.intp)
+            kept = fast.columns[keep_pos]
+            block = fast.block[np.ix_(keep_pos, keep_pos)]
+            whole = False
+        else:
+            kept = self.kept_columns(dropped)
+            block = self.d.correlation[np.ix_(kept, kept)]
+            whole = True
+        r = self.factor_of(block)
         if constants or r is None:
             units = tuple(dict.fromkeys(constants + [self.column_unit[j] for j in kept]))
             return _State(False, [_Breach("singular", units, math.inf,
                                           f"{self.label}rank deficient")],
                           dict.fromkeys(units, math.inf))
-        if kept.size == 0:
-            return _State(True, [], {})
-        inverse, info = sla.lapack.dtrtri(r, lower=0)
-        if info != 0 or not np.all(np.isfinite(inverse)):
-            units = tuple(dict.fromkeys(self.column_unit[j] for j in kept))
-            return _State(False, [_Breach("singular", units, math.inf,
-                                          f"{self.label}rank deficient")],
-                          dict.fromkeys(units, math.inf))
+        breaches: list[_Breach] = []
+        inflation: dict[str, float] = {}
+        explainers: dict[str, list[str]] = {}
+        if kept.size:
+            inverse, info = sla.lapack.dtrtri(r, lower=0)
+            if info != 0 or not np.all(np.isfinite(inverse)):
+                units = tuple(dict.fromkeys(self.column_unit[j] for j in kept))
+                return _State(False, [_Breach("singular", units, math.inf,
+                                              f"{self.label}rank deficient")],
+                              dict.fromkeys(units, math.inf))
+            self._inflation(kept, inverse, inflation, breaches, explainers)
+        for a, b, v in self.pairs:
+            units = (self.column_unit[a], self.column_unit[b])
+            if units[0] not in dropped and units[1] not in dropped:
+                breaches.append(_Breach("pair", units, abs(v),
+                                        f"{self.label}{self.names[a]} ~ {self.names[b]}: "
+                                        f"|r| {abs(v):.3f} >= {self.pair_max:g}"))
+        if self.cond_max is not None and whole and kept.size:
+            breaches += self._condition_breaches(kept, r)
+        return _State(not breaches, breaches, inflation, explainers)
+
+    @staticmethod
+    def factor_of(block: FloatArray) -> FloatArray | None:
+        if block.size == 0:
+            return np.zeros((0, 0))
+        try:
+            r = sla.cholesky(block, lower=False, check_finite=False)
+        except (np.linalg.LinAlgError, ValueError):
+            return None
+        return np.asarray(r) if np.all(np.isfinite(r)) and np.all(np.diag(r) > 0) else None
+
+    def _inflation(self, kept: IntArray, inverse: FloatArray, inflation: dict[str, float],
+                   breaches: list[_Breach], explainers: dict[str, list[str]]) -> None:
         position = {int(c): k for k, c in enumerate(kept)}
         vif = np.einsum("ij,ij->i", inverse, inverse)
-        inflation: dict[str, float] = {}
-        breaches: list[_Breach] = []
-        explainers: dict[str, list[str]] = {}
         for unit in dict.fromkeys(self.column_unit[j] for j in kept):
             cols = [position[int(c)] for c in self.unit_columns[unit]]
             if unit in self.group_units:
@@ -290,15 +364,6 @@ class _Problem:
                 breaches.append(_Breach("vif", (unit,), value,
                                         f"{self.label}{unit}: VIF {value:.3g} > "
                                         f"{self.vif_max:g}"))
-        for a, b, v in self.pairs:
-            if a in position and b in position:
-                units = (self.column_unit[a], self.column_unit[b])
-                breaches.append(_Breach("pair", units, abs(v),
-                                        f"{self.label}{self.names[a]} ~ {self.names[b]}: "
-                                        f"|r| {abs(v):.3f} >= {self.pair_max:g}"))
-        if self.cond_max is not None:
-            breaches += self._condition_breaches(kept, r)
-        return _State(not breaches, breaches, inflation, explainers)
 
     def _explainers(self, inverse: FloatArray, kept: IntArray, cols: list[int]) -> list[str]:
         """Other units by their largest |b_jk| = |P_jk / P_jj| (auxiliary regression)."""
@@ -348,40 +413,6 @@ class _Problem:
         indices = condition_indices(d.weight_sum, d.means, kept, r, d.scales, self.scaling)
         return float(indices[-1]) if indices.size else 1.0
 
-    def persistent(self, fixed_dropped: frozenset[str], units: Iterable[str]) -> set[str]:
-        """Units whose VIF breach survives dropping everything droppable (so they must go).
-
-        ``fixed_dropped`` drops every unit that may still be dropped; each unit in ``units``
-        is judged on the design of the remaining (fixed) columns plus itself:
-        R^2 = ||R_F^-T c_Fj||^2 (numerics.md), GVIF = det(C_GG) / det(C_GG - Y'Y).
-        """
-        if self.vif_max is None:
-            return set()
-        kept = self.kept_columns(fixed_dropped)
-        r = self.factor(kept)
-        if r is None:
-            return set()
-        out: set[str] = set()
-        for unit in units:
-            if unit not in self.unit_columns or unit in self.vif_waived:
-                continue
-            cols = self.unit_columns[unit]
-            if self.constant[cols].any():
-                continue
-            c_fg = self.d.correlation[np.ix_(kept, cols)]
-            y = sla.solve_triangular(r, c_fg, trans="T", check_finite=False) if kept.size \
-                else np.zeros((0, cols.size))
-            c_gg = self.d.correlation[np.ix_(cols, cols)]
-            schur = c_gg - y.T @ y
-            sign_s, log_s = np.linalg.slogdet(schur)
-            if sign_s <= 0:
-                out.add(unit)
-                continue
-            _, log_c = np.linalg.slogdet(c_gg)
-            if float(np.exp((log_c - log_s) / cols.size)) > self.vif_max:
-                out.add(unit)
-        return out
-
     def loss(self, dropped: frozenset[str]) -> float:
         """trace(C_DD - C_DK C_KK^-1 C_KD) over the dropped non-constant columns."""
         kept = self.kept_columns(dropped)
@@ -397,6 +428,29 @@ class _Problem:
         y = sla.solve_triangular(r, self.d.correlation[np.ix_(kept, gone)], trans="T",
                                  check_finite=False)
         return float(max(0.0, gone.size - float(np.einsum("ij,ij->", y, y))))
+
+    def reduced_loss(self, dropped: frozenset[str]) -> float:
+        """The loss of the candidate drops given every kept column, from the prepared Schur
+        block Z (nested Schur complements: trace(Z_DD - Z_DS Z_SS^-1 Z_SD)); the tie-break
+        between candidate sets, which all share the dependency drops."""
+        fast = self.fast
+        if fast is None or not dropped >= fast.base or not dropped - fast.base <= fast.candidates:
+            return self.loss(dropped)
+        gone = np.asarray([k for k, c in enumerate(fast.columns)
+                           if self.column_unit[c] in dropped], dtype=np.intp)
+        kept = np.asarray([k for k, c in enumerate(fast.columns)
+                           if self.column_unit[c] not in dropped], dtype=np.intp)
+        if gone.size == 0:
+            return 0.0
+        z_dd = fast.block[np.ix_(gone, gone)]
+        if kept.size == 0:
+            return float(np.trace(z_dd))
+        r = self.factor_of(fast.block[np.ix_(kept, kept)])
+        if r is None:
+            return math.nan
+        y = sla.solve_triangular(r, fast.block[np.ix_(kept, gone)], trans="T",
+                                 check_finite=False)
+        return float(max(0.0, float(np.trace(z_dd)) - float(np.einsum("ij,ij->", y, y))))
 
     def null_basis(self) -> tuple[FloatArray, list[str]]:
         """Rows spanning the null space of the design (standardised coefficients)."""
@@ -430,6 +484,10 @@ class _BudgetSpent(Exception):
     pass
 
 
+class _EnoughTies(Exception):
+    pass
+
+
 class _Search:
     def __init__(self, problems: list[_Problem], priority: dict[str, Priority],
                  max_nodes: int) -> None:
@@ -437,12 +495,20 @@ class _Search:
         self.priority = priority  # unit -> preference key (smaller = drop sooner)
         self.max_nodes = max_nodes
         self.nodes = 0
+        self.evaluations = 0
+        self.ties_capped = False
         self.cache: dict[frozenset[str], tuple[bool, list[_Breach], dict[str, float],
                                                dict[str, list[str]]]] = {}
+
+    def prepare(self, base: frozenset[str], candidates: list[str]) -> None:
+        for problem in self.problems:
+            problem.prepare(base, candidates)
+        self.cache.clear()
 
     def state(self, dropped: frozenset[str]) -> _State:
         hit = self.cache.get(dropped)
         if hit is None:
+            self.evaluations += 1
             feasible = True
             breaches: list[_Breach] = []
             inflation: dict[str, float] = {}
@@ -456,7 +522,7 @@ class _Search:
                 for unit, ex in st.explainers.items():
                     explainers.setdefault(unit, ex)
             hit = (feasible, breaches, inflation, explainers)
-            if len(self.cache) < 200_000:
+            if len(self.cache) < 500_000:
                 self.cache[dropped] = hit
         return _State(*hit)
 
@@ -465,62 +531,60 @@ class _Search:
         if self.nodes > self.max_nodes:
             raise _BudgetSpent
 
-    def forced(self, base: frozenset[str], state: _State, allowed: list[str],
-               blocked: set[str]) -> set[str] | None:
-        """Units that every feasible completion must drop; None if none can be feasible."""
-        everything = base | frozenset(allowed)
-        if not self.state(everything).feasible:
+    def supports(self, dropped: frozenset[str], state: _State, allowed: list[str]
+                 ) -> list[list[str]] | None:
+        """For each breach, a small set of units of which every feasible completion drops one.
+
+        A set S is such a set exactly when keeping S (and dropping every other allowed unit)
+        fails: by monotonicity, any completion that avoids S drops at most that much. S grows
+        from the unit in breach along its strongest explainers until that holds. None: no
+        completion is feasible at all.
+        """
+        allowed_set = frozenset(allowed)
+        if not self.state(dropped | allowed_set).feasible:
             return None
-        allowed_set = set(allowed)
-        out: set[str] = set()
+        out: list[list[str]] = []
+        seen: set[tuple[str, ...]] = set()
         for breach in state.breaches:
-            if breach.kind == "pair":
-                free = {u for u in breach.units if u in allowed_set}
-                if len(free) == 1:  # the other member is kept in this branch (or the same)
-                    out |= free
-        vif_units = {b.units[0] for b in state.breaches if b.kind == "vif"} & allowed_set
-        for problem in self.problems:
-            out |= problem.persistent(everything, vif_units)
+            if breach.kind == "vif":
+                lead = breach.units[0]
+                order = [lead, *state.explainers.get(lead, [])]
+            else:
+                order = list(breach.units)
+            ordered = [u for u in dict.fromkeys(order) if u in allowed_set]
+            ordered += [u for u in allowed if u not in ordered]
+            kept: list[str] = []
+            for unit in ordered:
+                kept.append(unit)
+                if not self.state(dropped | (allowed_set - frozenset(kept))).feasible:
+                    break
+            key = tuple(sorted(kept))
+            if key not in seen:
+                seen.add(key)
+                out.append(kept)
         return out
 
-    def support(self, state: _State, allowed: list[str]) -> list[str]:
-        """Units of which every feasible completion drops one: the narrowest breach."""
-        allowed_set = set(allowed)
-        best: list[str] | None = None
-        for breach in state.breaches:
-            if breach.kind == "pair":
-                units = [u for u in dict.fromkeys(breach.units) if u in allowed_set]
-            elif breach.kind == "vif":
-                lead = breach.units[0]
-                order = [lead] + state.explainers.get(lead, [])
-                units = [u for u in dict.fromkeys(order) if u in allowed_set]
-                units += [u for u in allowed if u not in units]
-            else:
-                units = [u for u in dict.fromkeys(breach.units) if u in allowed_set]
-                units += [u for u in allowed if u not in units]
-            if best is None or len(units) < len(best):
-                best = units
-        return best or []
-
     @staticmethod
-    def disjoint_pairs(state: _State, allowed: set[str]) -> int:
+    def disjoint(supports: list[list[str]]) -> int:
+        """How many supports share no unit (a lower bound on the drops still needed)."""
         used: set[str] = set()
         count = 0
-        for breach in state.breaches:
-            if breach.kind != "pair":
-                continue
-            units = set(breach.units)
-            if units <= allowed and not units & used:
-                used |= units
+        for support in sorted(supports, key=len):
+            if not used & set(support):
+                used |= set(support)
                 count += 1
         return count
 
     # exact
 
-    def exact(self, base: frozenset[str], candidates: list[str]) -> list[frozenset[str]]:
-        for size in range(len(candidates) + 1):
+    def exact(self, base: frozenset[str], candidates: list[str], start: int
+              ) -> list[frozenset[str]]:
+        for size in range(start, len(candidates) + 1):
             found: list[frozenset[str]] = []
-            self._dfs(base, frozenset(), frozenset(), size, candidates, found)
+            try:
+                self._dfs(base, frozenset(), frozenset(), size, candidates, found)
+            except _EnoughTies:
+                self.ties_capped = True
             if found:
                 return found
         return []
@@ -532,22 +596,26 @@ class _Search:
         if state.feasible:
             if len(chosen) == size:
                 found.append(chosen)
+                if len(found) >= MAX_TIES:
+                    raise _EnoughTies
             return
         if len(chosen) >= size:
             return
         allowed = [u for u in candidates if u not in chosen and u not in excluded]
-        forced = self.forced(base | chosen, state, allowed, set(excluded))
-        if forced is None:
+        supports = self.supports(base | chosen, state, allowed)
+        if supports is None:
+            return
+        forced = frozenset(s[0] for s in supports if len(s) == 1)
+        if len(chosen) + max(len(forced), self.disjoint(supports)) > size:
             return
         if forced:
-            if len(chosen) + len(forced) <= size:
-                self._dfs(base, chosen | forced, excluded, size, candidates, found)
+            self._dfs(base, chosen | forced, excluded, size, candidates, found)
             return
-        if len(chosen) + self.disjoint_pairs(state, set(allowed)) > size:
-            return
-        support = self.support(state, allowed)
-        for i, unit in enumerate(support):
-            self._dfs(base, chosen | {unit}, excluded | frozenset(support[:i]), size,
+        narrowest: list[str] = min(supports, key=lambda support: len(support))
+        branch = sorted(narrowest, key=lambda u: (
+            self.priority[u][0], -state.inflation.get(u, 0.0), self.priority[u][1]))
+        for i, unit in enumerate(branch):
+            self._dfs(base, chosen | {unit}, excluded | frozenset(branch[:i]), size,
                       candidates, found)
 
     # greedy
@@ -562,9 +630,11 @@ class _Search:
             allowed = [u for u in candidates if u not in chosen]
             if not allowed:
                 break
-            forced = self.forced(base | frozenset(chosen), state, allowed, set())
+            supports = self.supports(base | frozenset(chosen), state, allowed) or []
+            forced = sorted({s[0] for s in supports if len(s) == 1},
+                            key=lambda u: self.priority[u])
             if forced:
-                chosen += sorted(forced, key=lambda u: self.priority[u])
+                chosen += forced
                 continue
             in_breach = {u for b in state.breaches for u in b.units} & set(allowed)
             pool = sorted(in_breach or set(allowed),
@@ -581,10 +651,8 @@ class _Search:
         state = self.state(base)
         if state.feasible:
             return 0
-        forced = self.forced(base, state, candidates, set()) or set()
-        rest = set(candidates) - forced
-        bound = len(forced) + self.disjoint_pairs(self.state(base | frozenset(forced)), rest)
-        return max(1, bound)  # the base design fails, so at least one drop is needed
+        supports = self.supports(base, state, candidates) or []
+        return max(1, self.disjoint(supports))  # the base design fails: at least one drop
 
 
 # --- public entry point ----------------------------------------------------------------------
@@ -644,16 +712,20 @@ def suggest(verdict: Verdict, *, keep: Sequence[str] = (), prefer: Sequence[str]
                 notes.append("dropping every flagged feature is not enough; the search "
                              "widened to all droppable features")
                 candidates = wider
+        search.prepare(base_f, candidates)
         lower = search.lower_bound(base_f, candidates)
         use_exact = method == "exact" or (method == "auto" and len(candidates) <= exact_limit)
         solutions: list[frozenset[str]] | None = None
         if use_exact:
             used = "exact"
             try:
-                solutions = search.exact(base_f, candidates)
+                solutions = search.exact(base_f, candidates, lower)
             except _BudgetSpent:
                 notes.append(f"exact search stopped after {max_nodes} nodes; the greedy "
                              "result is shown")
+            if search.ties_capped:
+                notes.append(f"the tie-break compared the first {MAX_TIES} minimum-size sets "
+                             "found (tried in preference order, then highest VIF first)")
             if solutions:
                 best = min(solutions, key=lambda s: _tie_key(s, base_f, priority, whole))
                 chosen = _order_drops(search, base_f, list(best), priority)
@@ -672,6 +744,7 @@ def suggest(verdict: Verdict, *, keep: Sequence[str] = (), prefer: Sequence[str]
     return Suggestion(
         drops=tuple(dropped_by_dependency + chosen), steps=tuple(steps), kept=kept,
         method=used, candidates=tuple(candidates), nodes=search.nodes,
+        evaluations=search.evaluations,
         seconds=time.perf_counter() - started, exhaustive=exhaustive, lower_bound=lower,
         solved=end_state.feasible and not unresolved, remaining=remaining,
         loss=whole.loss(final), notes=tuple(notes))
@@ -695,7 +768,7 @@ def _tie_key(chosen: frozenset[str], base: frozenset[str], priority: dict[str, P
     # Preference: compare the most important dropped unit first (larger position = less
     # important = better), i.e. minimise the sorted preference keys lexicographically.
     pref = tuple(sorted((priority[u][0] for u in chosen), reverse=True))
-    loss = whole.loss(base | chosen)
+    loss = whole.reduced_loss(base | chosen)
     return pref, loss if math.isfinite(loss) else math.inf, tuple(sorted(chosen))
 
 
@@ -760,10 +833,27 @@ def _steps(search: _Search, reasons: dict[str, str], chosen: list[str],
     whole = search.problems[0]
     steps: list[SuggestStep] = []
     dropped: frozenset[str] = frozenset()
-    before = search.state(dropped)
+
+    conditions: dict[frozenset[str], float | None] = {}
+
+    def condition(drop: frozenset[str]) -> float | None:
+        if drop not in conditions:
+            conditions[drop] = whole.condition_number(drop)
+        return conditions[drop]
+
+    def full_state(drop: frozenset[str]) -> _State:
+        states = [problem.evaluate(drop, full=True) for problem in search.problems]
+        inflation: dict[str, float] = {}
+        for st in states:
+            for unit, value in st.inflation.items():
+                inflation[unit] = max(value, inflation.get(unit, 0.0))
+        return _State(all(st.feasible for st in states),
+                      [b for st in states for b in st.breaches], inflation)
+
+    before = full_state(dropped)
     for unit in by_dependency + chosen:
         after_set = dropped | {unit}
-        after = search.state(after_set)
+        after = full_state(after_set)
         if unit in reasons:
             reason = f"exact dependency ({reasons[unit]})"
         else:
@@ -774,8 +864,8 @@ def _steps(search: _Search, reasons: dict[str, str], chosen: list[str],
             feature=unit, reason=reason, vif_before=before.inflation.get(unit, math.nan),
             max_vif_before=max(before.inflation.values(), default=1.0),
             max_vif_after=max(after.inflation.values(), default=1.0),
-            condition_before=whole.condition_number(dropped),
-            condition_after=whole.condition_number(after_set),
+            condition_before=condition(dropped),
+            condition_after=condition(after_set),
             breaches_after=len(after.breaches)))
         dropped, before = after_set, after
     return steps
