@@ -347,3 +347,16 @@ def test_column_name_clashes_with_a_dummy(run_cli: CliRunner, write_table: Write
     table = write_table(frame)
     line = assert_unusable(run_cli(check_argv(table, out)), str(table), "depot=south")
     assert "rename" in line
+
+
+def test_parquet_folder_with_different_schemas(run_cli: CliRunner, tmp_path: Path,
+                                               out: Path) -> None:
+    import pyarrow.parquet as pq
+
+    folder = tmp_path / "parts"
+    folder.mkdir()
+    table = pa.Table.from_pandas(sample_frame(), preserve_index=False)
+    pq.write_table(table, folder / "a.parquet")
+    pq.write_table(table.drop_columns(["tyre_wear"]), folder / "b.parquet")
+    line = assert_unusable(run_cli(check_argv(folder, out)), str(folder))
+    assert "schema" in line
