@@ -42,6 +42,10 @@ STRUCTURAL_CORRELATION = 0.999
 #: The term must leave at most this fraction of what the parents leave linearly
 #: (1 - |r_term| <= (1 - R_linear) / 10), so a plain linear near-duplicate is not called a square.
 LINEAR_IMPROVEMENT = 10.0
+#: Parents screened per check: the features most correlated (main-pass |r|) with any breaching
+#: feature. A square or product that inflates a VIF is correlated with its parents (that is the
+#: inflation), so this bounds the work at MAX_PARENTS^2 / 2 terms whatever the width.
+MAX_PARENTS = 120
 
 
 @dataclass(frozen=True)
@@ -66,8 +70,12 @@ class StructuralTerm:
         what = (f"the square of {parents[0]}" if self.kind == "square"
                 else f"the product of {parents[0]} and {parents[1]}")
         verb = "squaring" if self.kind == "square" else "multiplying"
-        centred = "undefined (exact dependency)" if self.vif_centred is None \
-            else f"{self.vif_centred:.3g}"
+        if self.vif_centred is None:
+            return (f"{j} is (close to) {what} (r = {self.correlation:.5f} on the first "
+                    f"{self.sample_rows:,} rows): structural collinearity. The VIF after "
+                    f"centring cannot be shown while {' or '.join(parents)} or {j} sits in an "
+                    "exact dependency; resolve that first")
+        centred = f"{self.vif_centred:.3g}"
         parent_part = "; ".join(
             f"{p} {v:.3g} -> {'n/a' if c is None else f'{c:.3g}'}"
             for p, v, c in zip(parents, self.parent_vif, self.parent_vif_centred))
@@ -87,10 +95,13 @@ def structural_terms(source: TableSource, plan: DesignPlan, design: Design,
     targets = [int(j) for j in numeric if diagnostics.vif[j] > limit]
     if not targets or numeric.size < 2:
         return ()
+    rows = np.asarray(targets, dtype=np.intp)
+    strength = np.nanmax(np.abs(diagnostics.correlation[np.ix_(rows, numeric)]), axis=0)
+    parents = numeric[np.argsort(-strength, kind="stable")[:MAX_PARENTS]]
     sample = read_sample(source, plan, design)
     if sample.shape[0] < 8:
         return ()
-    found = detect_terms(sample, targets, numeric)
+    found = detect_terms(sample, targets, np.sort(parents))
     return tuple(_with_vifs(term, diagnostics) for term in found)
 
 
@@ -179,9 +190,10 @@ def _with_vifs(found: tuple[int, str, tuple[int, ...], float, float, float, int]
         feature=feature, kind="square" if kind == "square" else "product", parents=parents,
         correlation=r, intercept=intercept, slope=slope, sample_rows=rows,
         vif=float(d.vif[feature]),
-        vif_centred=None if centred is None else centred[feature],
+        vif_centred=None if centred is None or d.in_dependency[feature] else centred[feature],
         parent_vif=tuple(float(d.vif[p]) for p in involved),
-        parent_vif_centred=tuple(None if centred is None else centred[p] for p in involved))
+        parent_vif_centred=tuple(None if centred is None or d.in_dependency[p] else centred[p]
+                                 for p in involved))
 
 
 def centred_vifs(d: Diagnostics, feature: int, parents: tuple[int, ...], slope: float
@@ -191,7 +203,8 @@ def centred_vifs(d: Diagnostics, feature: int, parents: tuple[int, ...], slope: 
     New column t = x_j - slope * (m_k x_i + m_i x_k) (square: i = k, so x_j - 2 slope m_i x_i);
     co-moment A' M A with M = diag(s) C diag(s) the main pass's co-moment matrix.
     """
-    kept = np.flatnonzero(np.isfinite(np.diag(d.correlation)) & ~d.in_dependency)
+    # the design with one column per exact dependency dropped, as the diagnostics use it
+    kept = np.flatnonzero(np.isfinite(np.diag(d.inverse_correlation)))
     position = {int(c): k for k, c in enumerate(kept)}
     if feature not in position or any(p not in position for p in parents):
         return None
