@@ -92,7 +92,7 @@ class Verdict:
 
     def with_segments(self, segments: tuple[SegmentVerdict, ...]) -> Verdict:
         """This (whole-table) verdict plus one finding per segment; status = the worst."""
-        extra = tuple(segment.finding() for segment in segments)
+        extra = tuple(f for f in (segment.finding() for segment in segments) if f is not None)
         findings = self.findings + extra
         return replace(self, segments=segments, findings=findings, status=status_of(findings))
 
@@ -225,14 +225,17 @@ class SegmentVerdict:
     def status(self) -> str:
         return self.verdict.status if self.verdict is not None else "not_judged"
 
-    def finding(self) -> Finding:
-        """The whole-table finding that carries this segment's outcome."""
+    def finding(self) -> Finding | None:
+        """The whole-table finding that carries this segment's outcome (None: it passes;
+        verdict.json's ``segments`` still lists it)."""
         if self.verdict is None:
             return Finding("segment", "info", (), float(self.rows_used), None,
                            f"segment {self.label}: reported, not judged ({self.reason})")
+        if self.verdict.status == "pass":
+            return None
         active = [f for f in self.verdict.findings if not f.waived and f.level != "info"]
         worst = [f for f in active if f.level == self.verdict.status]
-        level = "info" if self.verdict.status == "pass" else self.verdict.status
+        level = self.verdict.status
         features = tuple(dict.fromkeys(x for f in worst for x in f.features))
         counts = ", ".join(f"{sum(1 for f in active if f.level == lv)} {lv}"
                            for lv in ("fail", "warn"))
