@@ -319,3 +319,25 @@ def test_cli_prefer_file_and_errors(tmp_path: Path, run_cli: Callable[..., objec
     assert dup.code == 2 and "line 2" in dup.err  # type: ignore[attr-defined]
     kept = run_cli(["suggest", str(table), "--keep", "dock_pressure,station_load"])
     assert kept.code == 1 and "not solved" in kept.out  # type: ignore[attr-defined]
+
+
+def test_condition_number_at_fail_level_uses_the_belsley_scaling() -> None:
+    # service_year sits far from zero with a small spread: with the intercept, the unit-length
+    # scaled design is ill-conditioned (Belsley, Kuh & Welsch 1980) although no VIF is large.
+    rng = np.random.default_rng(SEED + 4)
+    rows = 1_000
+    frame = pd.DataFrame({"service_year": rng.integers(2024, 2027, rows).astype(float),
+                          "odometer_kkm": rng.normal(80, 20, rows),
+                          "brake_wear_pct": rng.normal(40, 10, rows)})
+    policy = Policy.model_validate({"name": "cond", "limits": {
+        "condition_number": {"max": 30, "level": "fail"}, "vif": {"max": 5, "level": "fail"}}})
+    verdict = check(frame, policy)
+    assert verdict.status == "fail" and max(verdict.vif().values()) < 1.1  # type: ignore[type-var]
+    result = suggest(verdict)
+    assert result.drops == ("service_year",) and result.method == "exact"
+    step = result.steps[0]
+    assert step.condition_before is not None and step.condition_before > 30
+    assert step.condition_after is not None and step.condition_after <= 30
+    after = check(frame.drop(columns="service_year"), policy)
+    assert after.status == "pass"
+    assert after.diagnostics.condition_number == pytest.approx(step.condition_after, rel=1e-9)
