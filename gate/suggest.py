@@ -855,7 +855,9 @@ def _steps(search: _Search, reasons: dict[str, str], chosen: list[str],
         after_set = dropped | {unit}
         after = full_state(after_set)
         if unit in reasons:
-            reason = f"exact dependency ({reasons[unit]})"
+            relation = reasons[unit]  # as the verdict words it; avoid saying the kind twice
+            reason = relation if relation.startswith("exact dependency") \
+                else f"exact dependency ({relation})"
         else:
             own = before.inflation.get(unit, math.nan)
             kinds = sorted({b.kind for b in before.breaches if unit in b.units})
