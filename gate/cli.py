@@ -144,6 +144,7 @@ def _run_check(args: argparse.Namespace) -> int:
 
     if args.scheduler and args.engine != "dask":
         raise GateError("--scheduler needs --engine dask; add --engine dask")
+    _preload_html_writer()
     verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
                     progress=None if args.quiet else terminal_progress)
@@ -159,6 +160,25 @@ def _run_check(args: argparse.Namespace) -> int:
             print(line)
         print(f"  wrote {', '.join(str(p) for p in written)}")
     return verdict.exit_code
+
+
+def _preload_html_writer() -> None:
+    """Import the HTML writer's heavy libraries (pandas, great-tables: ~0.9 s) on a thread
+    while the check reads the table; the writer finds them loaded. Measured on 20,000 x 2,000:
+    `gate check` 7.5 s -> 6.9 s (mean of 3 alternating runs each). Any failure here is ignored:
+    the writer's own import reports it."""
+    import threading
+
+    def load() -> None:
+        try:
+            import great_tables  # noqa: F401
+            import pandas  # noqa: F401
+
+            import gate.artefacts.html_summary  # noqa: F401
+        except Exception:  # noqa: BLE001, S110 - reported by the writer's own import
+            pass
+
+    threading.Thread(target=load, name="gate-preload-html", daemon=True).start()
 
 
 def _run_audit_verify(args: argparse.Namespace) -> int:

@@ -44,6 +44,7 @@ from gate.table import (
     TableSource,
     from_dataframe,
     open_path,
+    row_group_chunks,
 )
 
 #: Workers of the local cluster started when no scheduler is given.
@@ -67,13 +68,7 @@ class ParquetRowGroup:
         import pyarrow.parquet as pq
 
         file = pq.ParquetFile(self.path, pre_buffer=False, buffer_size=PARQUET_BUFFER_BYTES)
-        try:
-            for batch in file.iter_batches(batch_size=chunk_rows, row_groups=[self.row_group],
-                                           columns=list(columns), use_threads=True):
-                yield pa.Table.from_batches([batch])
-        except (pa.ArrowException, OSError) as exc:
-            raise TableError(f"{self.path}: row group {self.row_group} unreadable "
-                             f"({str(exc).splitlines()[0] if str(exc) else exc})") from None
+        yield from row_group_chunks(file, self.row_group, columns, chunk_rows, self.path)
 
 
 @dataclass(frozen=True)

@@ -27,6 +27,13 @@ ColumnKind = Literal["numeric", "boolean", "categorical", "datetime", "other"]
 DEFAULT_CHUNK_ROWS = 65_536
 #: Read-buffer per column chunk when streaming Parquet (see the module docstring).
 PARQUET_BUFFER_BYTES = 1 << 18
+#: A row group up to this size (uncompressed, selected columns) is read whole, with pyarrow's
+#: threads; a larger one is streamed in batches.
+WHOLE_ROW_GROUP_BYTES = 128 << 20
+#: Streaming holds about one read buffer and one decoded page per column, so a wide row group
+#: up to this much per column is cheaper read whole. Measured on 20,000 x 2,000 (one 395 MB row
+#: group): streamed in 4,194-row batches 1.7 GB peak and 2.1 s; read whole 0.6 GB and 0.34 s.
+STREAM_BYTES_PER_COLUMN = 1 << 20
 SUFFIXES = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv", ".feather": "arrow",
             ".arrow": "arrow", ".ipc": "arrow"}
 
@@ -131,15 +138,28 @@ class ParquetSource:
                ) -> Iterator[pa.Table]:
         for file, path in zip(self._files, self._paths):
             for group in range(file.metadata.num_row_groups):
-                # Batches of one row group at a time: a huge row group never sits in memory.
-                batches = file.iter_batches(batch_size=chunk_rows, row_groups=[group],
-                                            columns=list(columns), use_threads=True)
-                try:
-                    for batch in batches:
-                        yield pa.Table.from_batches([batch])
-                except (pa.ArrowException, OSError) as exc:
-                    raise TableError(f"{path}: row group {group} unreadable "
-                                     f"({_first_line(exc)})") from None
+                yield from row_group_chunks(file, group, columns, chunk_rows, path)
+
+
+def row_group_chunks(file: Any, group: int, columns: Sequence[str], chunk_rows: int,
+                     path: Path | str) -> Iterator[pa.Table]:
+    """One Parquet row group in chunks of at most ``chunk_rows`` rows: read whole when small
+    (or wide: see STREAM_BYTES_PER_COLUMN), else streamed in batches so that a huge row group
+    never sits in memory."""
+    meta = file.metadata
+    share = len(columns) / max(meta.num_columns, 1)
+    size = meta.row_group(group).total_byte_size * share
+    try:
+        if size <= max(WHOLE_ROW_GROUP_BYTES, len(columns) * STREAM_BYTES_PER_COLUMN):
+            table = file.read_row_group(group, columns=list(columns), use_threads=True)
+            for start in range(0, table.num_rows, chunk_rows):
+                yield table.slice(start, chunk_rows)
+            return
+        for batch in file.iter_batches(batch_size=chunk_rows, row_groups=[group],
+                                       columns=list(columns), use_threads=True):
+            yield pa.Table.from_batches([batch])
+    except (pa.ArrowException, OSError) as exc:
+        raise TableError(f"{path}: row group {group} unreadable ({_first_line(exc)})") from None
 
 
 class CsvSource:

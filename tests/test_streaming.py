@@ -29,6 +29,7 @@ from pyarrow import feather
 from statsmodels.stats.outliers_influence import variance_inflation_factor
 
 import gate
+from gate import table as table_module
 from gate.cli import main as cli_main
 from gate.diagnostics import Diagnostics
 from gate.policy import parse_policy
@@ -193,6 +194,20 @@ def test_big_row_group_is_read_in_bounded_batches(tmp_path: Path) -> None:
     sizes = [chunk.num_rows for chunk in source.chunks(["a", "b"], chunk_rows=700)]
     assert sum(sizes) == 5000
     assert max(sizes) <= 700
+
+
+def test_streamed_and_whole_row_group_reads_agree(tmp_path: Path,
+                                                 monkeypatch: pytest.MonkeyPatch) -> None:
+    """Small (or wide) row groups are read whole, big ones streamed in batches: same verdict."""
+    frame = dependency_frame()
+    path = write_all_formats(frame, tmp_path, row_group=400)["parquet"]
+    whole = gate.check(path, DEPENDENCY_POLICY, chunk_rows=64)
+    monkeypatch.setattr(table_module, "WHOLE_ROW_GROUP_BYTES", 0)
+    monkeypatch.setattr(table_module, "STREAM_BYTES_PER_COLUMN", 0)
+    source = ParquetSource(path)
+    batches = [chunk.num_rows for chunk in source.chunks(["hours_idle"], chunk_rows=64)]
+    assert max(batches) <= 64 and sum(batches) == len(frame)
+    assert_same_verdict(whole, gate.check(path, DEPENDENCY_POLICY, chunk_rows=64))
 
 
 def test_cli_chunk_rows_gives_the_same_verdict_json(tmp_path: Path) -> None:
