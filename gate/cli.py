@@ -41,6 +41,16 @@ def main(argv: Sequence[str] | None = None) -> int:
         return EXIT_BUG
 
 
+def _add_table_arguments(command: argparse.ArgumentParser) -> None:
+    """TABLE, --policy and --chunk-rows: the same meaning wherever a table is checked."""
+    command.add_argument("table", metavar="TABLE",
+                         help=".parquet (file or folder), .csv, .feather/.arrow")
+    command.add_argument("--policy", metavar="FILE",
+                         help="policy YAML (default: the packaged default policy)")
+    command.add_argument("--chunk-rows", metavar="N", type=int,
+                         help="rows per chunk when streaming (default: sized from the width)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     from gate.verdict import tool_version
 
@@ -51,14 +61,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     check = commands.add_parser("check", help="check a table; exit 0 pass/warn, 1 fail, 2 bad "
                                 "input", description="Check a feature table against a policy.")
-    check.add_argument("table", metavar="TABLE",
-                       help=".parquet (file or folder), .csv, .feather/.arrow")
-    check.add_argument("--policy", metavar="FILE", help="policy YAML (default: packaged default)")
+    _add_table_arguments(check)
     check.add_argument("--out", metavar="DIR", default="gate-out",
                        help="folder for verdict.json and summary.html (default: gate-out)")
     check.add_argument("--label", metavar="TEXT", help="free text carried into the verdict")
-    check.add_argument("--chunk-rows", metavar="N", type=int,
-                       help="rows per chunk when streaming (default: sized from the width)")
     check.add_argument("--junit", metavar="FILE", type=Path,
                        help="also write JUnit XML (one test case per rule and subject)")
     check.add_argument("--audit-log", metavar="FILE", type=Path,
@@ -258,9 +264,7 @@ def _add_remedy_commands(commands: Any) -> None:
         "resolved first; an exact branch and bound runs when at most 20 features are flagged, "
         "a greedy search with a stated lower bound otherwise. Exit 0 when a set is found, 1 "
         "when no set passes (e.g. --keep forbids it), 2 on bad input.")
-    suggest.add_argument("table", metavar="TABLE",
-                         help=".parquet (file or folder), .csv, .feather/.arrow")
-    suggest.add_argument("--policy", metavar="FILE", help="policy YAML (default: packaged)")
+    _add_table_arguments(suggest)
     suggest.add_argument("--keep", metavar="A,B", default="",
                          help="comma-separated features (or categorical columns) never dropped")
     suggest.add_argument("--prefer", metavar="FILE",
@@ -271,8 +275,6 @@ def _add_remedy_commands(commands: Any) -> None:
                          "columns.exclude (atomically)")
     suggest.add_argument("--method", choices=("auto", "exact", "greedy"), default="auto",
                          help="search: auto (exact up to 20 candidates), exact, greedy")
-    suggest.add_argument("--chunk-rows", metavar="N", type=int,
-                         help="rows per chunk when streaming (default: sized from the width)")
     suggest.add_argument("--format", choices=("text", "json"), default="text",
                          help="stdout: the steps as text (default) or as JSON")
     suggest.set_defaults(handler=_run_suggest)

@@ -28,7 +28,6 @@ from pydantic import (
 from gate.errors import PolicyError
 
 
-
 def _yaml_off(value: Any) -> Any:
     """YAML 1.1 reads a bare `off` as false; the policy means the level "off"."""
     return "off" if value is False else value

@@ -162,7 +162,25 @@ def row_group_chunks(file: Any, group: int, columns: Sequence[str], chunk_rows: 
         raise TableError(f"{path}: row group {group} unreadable ({_first_line(exc)})") from None
 
 
-class CsvSource:
+class _SingleFileSource:
+    """Shared by CSV and Arrow IPC sources: one file, schema known, row count unknown."""
+
+    _path: Path
+    _schema: pa.Schema
+
+    @property
+    def columns(self) -> tuple[Column, ...]:
+        return _schema_columns(self._schema)
+
+    @property
+    def row_count(self) -> None:
+        return None
+
+    def sha256(self) -> str:
+        return _hash_file(self._path)
+
+
+class CsvSource(_SingleFileSource):
     """A CSV file read in blocks by pyarrow's streaming reader."""
 
     def __init__(self, path: Path) -> None:
@@ -192,17 +210,6 @@ class CsvSource:
         return self._csv.open_csv(self._path, read_options=self._csv.ReadOptions(
             block_size=block_size), convert_options=convert)
 
-    @property
-    def columns(self) -> tuple[Column, ...]:
-        return _schema_columns(self._schema)
-
-    @property
-    def row_count(self) -> None:
-        return None
-
-    def sha256(self) -> str:
-        return _hash_file(self._path)
-
     def chunks(self, columns: Sequence[str], chunk_rows: int = DEFAULT_CHUNK_ROWS
                ) -> Iterator[pa.Table]:
         # Bytes per block from the row target: about 16 bytes a value is typical for CSV.
@@ -217,7 +224,7 @@ class CsvSource:
                              ) from None
 
 
-class ArrowSource:
+class ArrowSource(_SingleFileSource):
     """An Arrow IPC file (Feather v2) or stream, memory-mapped and read batch by batch."""
 
     def __init__(self, path: Path) -> None:
@@ -237,17 +244,6 @@ class ArrowSource:
         except pa.ArrowInvalid:
             source.seek(0)
             return pa.ipc.open_stream(source)
-
-    @property
-    def columns(self) -> tuple[Column, ...]:
-        return _schema_columns(self._schema)
-
-    @property
-    def row_count(self) -> None:
-        return None
-
-    def sha256(self) -> str:
-        return _hash_file(self._path)
 
     def chunks(self, columns: Sequence[str], chunk_rows: int = DEFAULT_CHUNK_ROWS
                ) -> Iterator[pa.Table]:

@@ -22,12 +22,11 @@ in binary: ``numpy.load(path)`` (no pickle) returns
 
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
+from gate.artefacts.files import write_atomic
 from gate.diagnostics import INTERCEPT
 from gate.judge import INTERCEPT_NAME
 from gate.verdict import Verdict
@@ -55,18 +54,7 @@ def matrices(verdict: Verdict) -> dict[str, np.ndarray]:
 
 def write_matrices_npz(verdict: Verdict, path: str | Path) -> Path:
     """Write matrices.npz atomically (temp file in the same folder, then rename)."""
-    target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            # Uncompressed: correlation matrices of real data barely compress, and zlib on
-            # 2 x p^2 doubles would cost more than the whole check at p = 5,000.
-            np.savez(handle, **matrices(verdict))  # type: ignore[arg-type]
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(tmp, target)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return target
+    arrays = matrices(verdict)
+    # Uncompressed: correlation matrices of real data barely compress, and zlib on 2 x p^2
+    # doubles would cost more than the whole check at p = 5,000.
+    return write_atomic(path, lambda handle: np.savez(handle, **arrays))  # type: ignore[arg-type]
