@@ -17,8 +17,8 @@ def summary_lines(verdict: Verdict) -> list[str]:
     lines = [
         f"{verdict.status.upper()}  {t.source}  policy '{verdict.policy.name}'"
         + (f"  label '{verdict.label}'" if verdict.label else ""),
-        f"  rows {t.rows_used:,} used of {t.rows:,} ({t.rows_dropped:,} dropped for missing "
-        f"values); {len(verdict.features)} features; rank {d.rank} of {d.features + 1}",
+        (f"  rows {t.rows_used:,} used of {t.rows:,} ({t.rows_dropped:,} dropped for missing "
+         f"values); {len(verdict.features)} features; rank {d.rank} of {d.features + 1}"),
         f"  findings: {counts['fail']} fail, {counts['warn']} warn, {waived} waived",
     ]
     ranked = sorted(active, key=lambda f: (_ORDER[f.level], f.rule))
