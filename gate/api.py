@@ -56,20 +56,9 @@ def check(table: Any, policy: Policy | str | Path | None = None, *, label: str |
         plan = plan_design(source, policy, distinct=runner.distinct_values)
         full_gram, counts = runner.main_pass(source, plan, chunk_rows=chunk_rows,
                                              progress=progress)
-        design = finish_design(plan, full_gram, counts)
-        gram = full_gram.select(np.asarray(design.selection, dtype=np.intp))
-        _check_rows(design, gram.rows, gram.weight_sum, source.name)
-
-        tolerance = policy.limits.rank_deficiency.tolerance
-        exact = plan_exact_pass(gram, tolerance=tolerance)
-        factor = runner.exact_pass(source, plan, design.selection, exact,
-                                   chunk_rows=chunk_rows, progress=progress) \
-            if exact.needs_exact_pass else None
-    diagnostics = compute_diagnostics(
-        gram, exact, factor=factor, groups=tuple(g.indices for g in design.groups),
-        scaling=policy.limits.condition_number.scaling)
-    verdict = build_verdict(diagnostics, design, policy, source_name=source.name,
-                            sha256=digest(), label=label, today=today)
+        verdict = _verdict_from_gram(runner, source, plan, full_gram, counts, policy,
+                                     sha256=digest, label=label, today=today,
+                                     chunk_rows=chunk_rows, progress=progress)
     return _with_structural(verdict, source, plan)
 
 
@@ -108,22 +97,12 @@ def _check_segments(source: TableSource, policy: Policy, *, label: str | None,
     result = segment_pass(source, plan, spec.by, chunk_rows=chunk_rows)
     sha256 = digest()
 
-    def stages(part: TableSource, full_gram: CentredGram, counts: RowCounts,
-               name: str) -> Verdict:
-        design = finish_design(plan, full_gram, counts)
-        gram = full_gram.select(np.asarray(design.selection, dtype=np.intp))
-        _check_rows(design, gram.rows, gram.weight_sum, name)
-        exact = plan_exact_pass(gram, tolerance=policy.limits.rank_deficiency.tolerance)
-        factor = runner.exact_pass(part, plan, design.selection, exact, chunk_rows=chunk_rows,
-                                   progress=progress) if exact.needs_exact_pass else None
-        diagnostics = compute_diagnostics(
-            gram, exact, factor=factor, groups=tuple(g.indices for g in design.groups),
-            scaling=policy.limits.condition_number.scaling)
-        return build_verdict(diagnostics, design, policy, source_name=name, sha256=sha256,
-                             label=label, today=today)
+    def stages(part: TableSource, full_gram: CentredGram, counts: RowCounts) -> Verdict:
+        return _verdict_from_gram(runner, part, plan, full_gram, counts, policy,
+                                  sha256=lambda: sha256, label=label, today=today,
+                                  chunk_rows=chunk_rows, progress=progress)
 
-    whole = _with_structural(stages(source, result.gram, result.counts, source.name),
-                             source, plan)
+    whole = _with_structural(stages(source, result.gram, result.counts), source, plan)
     verdicts: list[SegmentVerdict] = []
     for segment in result.segments:
         rows, used = segment.counts.read, segment.gram.rows
@@ -134,8 +113,27 @@ def _check_segments(source: TableSource, policy: Policy, *, label: str | None,
         else:
             part = SegmentSource(source, result.by, segment.key)
             verdicts.append(SegmentVerdict(result.by, segment.key, rows, used,
-                                           stages(part, segment.gram, segment.counts, part.name)))
+                                           stages(part, segment.gram, segment.counts)))
     return whole.with_segments(tuple(verdicts))
+
+
+def _verdict_from_gram(runner: Engine, source: TableSource, plan: DesignPlan,
+                       full_gram: CentredGram, counts: RowCounts, policy: Policy, *,
+                       sha256: Callable[[], str | None], label: str | None,
+                       today: dt.date | None, chunk_rows: int | None,
+                       progress: ProgressFactory | None) -> Verdict:
+    """Main-pass statistics -> design -> (exact pass if needed) -> diagnostics -> verdict."""
+    design = finish_design(plan, full_gram, counts)
+    gram = full_gram.select(np.asarray(design.selection, dtype=np.intp))
+    _check_rows(design, gram.rows, gram.weight_sum, source.name)
+    exact = plan_exact_pass(gram, tolerance=policy.limits.rank_deficiency.tolerance)
+    factor = runner.exact_pass(source, plan, design.selection, exact, chunk_rows=chunk_rows,
+                               progress=progress) if exact.needs_exact_pass else None
+    diagnostics = compute_diagnostics(
+        gram, exact, factor=factor, groups=tuple(g.indices for g in design.groups),
+        scaling=policy.limits.condition_number.scaling)
+    return build_verdict(diagnostics, design, policy, source_name=source.name,
+                         sha256=sha256(), label=label, today=today)
 
 
 def _engine(source: TableSource, engine: str | None, scheduler: Any) -> Engine:
