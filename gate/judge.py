@@ -113,10 +113,16 @@ def _vif_findings(d: Diagnostics, design: Design, policy: Policy) -> list[Findin
     return out
 
 
+def effective_rows_label(rows: int, inflation: float) -> str:
+    """n / VIF as text: whole rows from 10 up, two significant digits below (never "0")."""
+    effective = rows / inflation
+    return f"{effective:,.0f}" if effective >= 10 else f"{effective:.2g}"
+
+
 def _effective_rows_text(rows: int, inflation: float) -> str:
     """Var(b_j) grows by VIF_j: the coefficient is as precise as with n / VIF_j rows."""
-    return (f"; its coefficient is as precise as with {rows / inflation:,.0f} of the {rows:,} "
-            "rows (n / VIF)")
+    return (f"; its coefficient is as precise as with {effective_rows_label(rows, inflation)} "
+            f"of the {rows:,} rows (n / VIF)")
 
 
 def _condition_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) -> list[Finding]:

@@ -27,7 +27,7 @@ import numpy as np
 
 from gate.artefacts.files import write_atomic
 from gate.diagnostics import INTERCEPT
-from gate.judge import INTERCEPT_NAME, Finding, describe_dependency
+from gate.judge import INTERCEPT_NAME, Finding, describe_dependency, effective_rows_label
 
 if TYPE_CHECKING:
     from great_tables import GT
@@ -464,7 +464,7 @@ def _feature_row(verdict: Verdict, k: int) -> dict[str, str]:
         "tolerance": _num(1.0 / vif, 4),
         "r2": _num(1.0 - 1.0 / vif, 4) if vif < 1e4 else f"{1.0 - 1.0 / vif:.7f}",
         "se": "\u00d7" + _num(math.sqrt(vif), 2),
-        "effective": f"{d.rows / vif:,.0f}",
+        "effective": effective_rows_label(d.rows, vif),
         "explained": helpers or "\u2014",
     }
 
@@ -483,7 +483,7 @@ def _group_row(verdict: Verdict, g: int) -> dict[str, str]:
         "tolerance": _num(1.0 / scaled, 4),
         "r2": "\u2014",
         "se": "\u00d7" + _num(result.adjusted, 2),
-        "effective": f"{verdict.diagnostics.rows / scaled:,.0f}",
+        "effective": effective_rows_label(verdict.diagnostics.rows, scaled),
         "explained": f"{levels}; GVIF {_num(result.gvif, 3)}",
     }
 
@@ -682,7 +682,7 @@ def _segments_section(verdict: Verdict) -> str:
             "segment": segment.label, "rows": f"{segment.rows_used:,}",
             "status": inner.status,
             "worst_vif": _num(worst, 2),
-            "effective": f"{inner.diagnostics.rows / max(finite, default=1.0):,.0f}"
+            "effective": effective_rows_label(inner.diagnostics.rows, max(finite, default=1.0))
             if not math.isinf(worst) else "0",
             "detail": active[0].message if active else "",
         })
