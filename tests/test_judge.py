@@ -254,3 +254,12 @@ def test_a_featureless_finding_is_not_waived_by_a_feature_waiver() -> None:
     plain = [f for f in of_rule(verdict, "rank_deficiency") if not f.features]
     assert len(plain) == 1 and not plain[0].waived
     assert verdict.status == "fail"
+
+
+def test_effective_rows_never_round_to_zero() -> None:
+    # n / VIF (variance of a coefficient grows by VIF): 3,000 / 32,877 = 0.091 rows.
+    from gate.judge import effective_rows_label
+
+    assert effective_rows_label(3_000, 32_877.0) == "0.091"
+    assert effective_rows_label(3_965, 515.0) == "7.7"
+    assert effective_rows_label(3_965, 1.06) == "3,741"
