@@ -7,7 +7,8 @@ engine (``gate.engine_dask``) offers the same three methods and runs them on a c
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from types import TracebackType
 from typing import Protocol, Self
 
@@ -83,8 +84,7 @@ def main_pass(source: TableSource, plan: DesignPlan, *, chunk_rows: int | None =
     """Centred Gram over the accumulation layout, and the row counts."""
     gram = CentredGram.empty(len(plan.layout))
     counts = RowCounts()
-    counter = progress("reading rows", source.row_count) if progress else None
-    try:
+    with _counting(progress, "reading rows", source.row_count) as advance:
         chunks = iter(source.chunks(plan.read_columns, plan.chunk_rows(chunk_rows)))
         for chunk in chunks:
             try:
@@ -95,11 +95,7 @@ def main_pass(source: TableSource, plan: DesignPlan, *, chunk_rows: int | None =
                 raise exc.with_total(total) from None
             gram = gram.merge(CentredGram.from_block(values, weights, overwrite=True))
             counts = counts.add(chunk_counts)
-            if counter:
-                counter.advance(chunk_counts.read)
-    finally:
-        if counter:
-            counter.finish()
+            advance(chunk_counts.read)
     return gram, counts
 
 
@@ -109,16 +105,25 @@ def exact_pass(source: TableSource, plan: DesignPlan, selection: tuple[int, ...]
     """TSQR factor of the centred, scaled rows over the columns the Gram could not settle."""
     factor = TriangularFactor.empty(exact.columns.size)
     read = 0
-    counter = progress("exact pass", source.row_count) if progress else None
-    try:
+    with _counting(progress, "exact pass", source.row_count) as advance:
         for chunk in source.chunks(plan.read_columns, plan.chunk_rows(chunk_rows)):
             values, weights, chunk_counts = encode_block(plan, chunk, first_row=read)
             read += chunk_counts.read
             block = exact_pass_block(exact, values[:, list(selection)], weights)
             factor = factor.merge(TriangularFactor.from_block(block))
-            if counter:
-                counter.advance(chunk_counts.read)
-    finally:
-        if counter:
-            counter.finish()
+            advance(chunk_counts.read)
     return factor
+
+
+@contextmanager
+def _counting(progress: ProgressFactory | None, label: str, rows: int | None
+              ) -> Iterator[Callable[[int], None]]:
+    """A row counter for one pass (a no-op without progress), finished however the pass ends."""
+    if progress is None:
+        yield lambda _rows: None
+        return
+    counter = progress(label, rows)
+    try:
+        yield counter.advance
+    finally:
+        counter.finish()
