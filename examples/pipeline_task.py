@@ -21,7 +21,7 @@ from gate.examples.bike_share_demand import write_tables
 
 from gate.api import check
 from gate.errors import GateFailed
-from gate.outputs import write_check_outputs
+from gate.artefacts.outputs import write_check_outputs
 
 log = logging.getLogger("station_demand.features")
 POLICY = Path(__file__).with_name("bike_share_policy.yaml")

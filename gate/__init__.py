@@ -2,9 +2,9 @@
 
 from gate.api import check
 from gate.errors import DesignError, GateError, GateFailed, OutputError, PolicyError, TableError
-from gate.judge import Finding
-from gate.policy import Policy, load_policy, parse_policy
-from gate.verdict import Verdict
+from gate.judge.rules import Finding
+from gate.judge.verdict import Verdict
+from gate.policy.models import Policy, load_policy, parse_policy
 
 __all__ = [
     "DesignError",

@@ -1,3 +1,3 @@
-from gate.cli import main
+from gate.cli.main import main
 
 raise SystemExit(main())

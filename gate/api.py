@@ -15,15 +15,16 @@ from typing import Any, Literal
 
 import numpy as np
 
-from gate.design import Design, DesignPlan, RowCounts, finish_design, plan_design
-from gate.diagnostics import Diagnostics, compute_diagnostics, plan_exact_pass
+from gate.design.plan import Design, DesignPlan, RowCounts, finish_design, plan_design
+from gate.diagnose.diagnostics import Diagnostics, compute_diagnostics
 from gate.errors import DesignError, TableError
-from gate.judge import Finding, judge, status_of
-from gate.passes import Engine, LocalEngine, ProgressFactory
-from gate.policy import Policy, load_policy, today_utc
-from gate.statistics import CentredGram
-from gate.table import DaskFrameSource, TableSource, open_table
-from gate.verdict import TableInfo, Verdict, tool_version
+from gate.judge.rules import Finding, judge, status_of
+from gate.judge.verdict import TableInfo, Verdict, tool_version
+from gate.policy.models import Policy, load_policy, today_utc
+from gate.read.sources import DaskFrameSource, TableSource, open_table
+from gate.stats.accumulators import CentredGram
+from gate.stats.local import Engine, LocalEngine, ProgressFactory
+from gate.stats.routing import plan_exact_pass
 
 
 def check(table: Any, policy: Policy | str | Path | None = None, *, label: str | None = None,
@@ -66,7 +67,7 @@ def _with_structural(verdict: Verdict, source: TableSource, plan: DesignPlan) ->
     """Stage after judging: squares/products among breaching features (information only)."""
     if isinstance(source, DaskFrameSource):
         return verdict  # a sample read would start the cluster's graph again; not worth it
-    from gate.structural import structural_terms
+    from gate.diagnose.structural import structural_terms
 
     terms = structural_terms(source, plan, verdict.design, verdict.diagnostics, verdict.policy)
     if not terms:
@@ -83,8 +84,8 @@ def _check_segments(source: TableSource, policy: Policy, *, label: str | None,
                     progress: ProgressFactory | None) -> Verdict:
     """The whole gate per segment and on the whole table, from ONE main pass: each segment's
     CentredGram is accumulated separately and the whole table's Gram is their merge."""
-    from gate.segments import SegmentSource, segment_pass, segment_policy
-    from gate.verdict import SegmentVerdict
+    from gate.judge.verdict import SegmentVerdict
+    from gate.stats.segments import SegmentSource, segment_pass, segment_policy
 
     spec = policy.segments
     assert spec is not None
@@ -94,7 +95,7 @@ def _check_segments(source: TableSource, policy: Policy, *, label: str | None,
     digest = _hash_in_background(source)
     runner = LocalEngine()
     plan = plan_design(source, segment_policy(policy))
-    result = segment_pass(source, plan, spec.by, chunk_rows=chunk_rows)
+    result = segment_pass(source, plan, spec.by, chunk_rows=chunk_rows, progress=progress)
     sha256 = digest()
 
     def stages(part: TableSource, full_gram: CentredGram, counts: RowCounts) -> Verdict:
@@ -123,7 +124,7 @@ def _verdict_from_gram(runner: Engine, source: TableSource, plan: DesignPlan,
                        today: dt.date | None, chunk_rows: int | None,
                        progress: ProgressFactory | None) -> Verdict:
     """Main-pass statistics -> design -> (exact pass if needed) -> diagnostics -> verdict."""
-    design = finish_design(plan, full_gram, counts)
+    design = finish_design(plan, full_gram.mean, counts)
     gram = full_gram.select(np.asarray(design.selection, dtype=np.intp))
     _check_rows(design, gram.rows, gram.weight_sum, source.name)
     exact = plan_exact_pass(gram, tolerance=policy.limits.rank_deficiency.tolerance)
@@ -140,7 +141,7 @@ def _engine(source: TableSource, engine: str | None, scheduler: Any) -> Engine:
     if engine is None:
         engine = "dask" if isinstance(source, DaskFrameSource) else "local"
     if engine == "dask":
-        from gate.engine_dask import DaskEngine  # dask is optional: imported only here
+        from gate.stats.dask import DaskEngine  # dask is optional: imported only here
 
         return DaskEngine(scheduler)
     if engine != "local":

@@ -16,7 +16,7 @@ from __future__ import annotations
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
-    from gate.verdict import Verdict
+    from gate.judge.verdict import Verdict
 
 
 class GateError(Exception):

@@ -27,8 +27,8 @@ from sklearn.utils.validation import _check_feature_names_in, check_is_fitted, v
 
 from gate.api import check
 from gate.errors import GateFailed
-from gate.policy import Policy
-from gate.verdict import Verdict
+from gate.judge.verdict import Verdict
+from gate.policy.models import Policy
 
 
 class CollinearityWarning(UserWarning):

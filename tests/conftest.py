@@ -20,8 +20,8 @@ import pyarrow.parquet as pq
 import pytest
 from pyarrow import feather
 
-from gate.cli import main as cli_main
-from gate.policy import Policy, parse_policy
+from gate.cli.main import main as cli_main
+from gate.policy.models import Policy, parse_policy
 
 SEED = 20261202
 
@@ -171,7 +171,7 @@ def pytest_terminal_summary(terminalreporter: pytest.TerminalReporter) -> None:
 def _every_verdict_matches_the_schema(monkeypatch: pytest.MonkeyPatch) -> None:
     """Validate every verdict.json document the suite builds (Verdict.to_dict: verdict.json,
     `--format json`, demo, segments) against the schema `gate verdict schema` prints."""
-    from gate.verdict import Verdict
+    from gate.judge.verdict import Verdict
 
     validator = _verdict_validator()
     original = Verdict.to_dict
@@ -188,6 +188,6 @@ def _every_verdict_matches_the_schema(monkeypatch: pytest.MonkeyPatch) -> None:
 def _verdict_validator() -> Any:
     import jsonschema
 
-    from gate.schemas import verdict_schema
+    from gate.judge.document import verdict_schema
 
     return jsonschema.Draft202012Validator(verdict_schema())

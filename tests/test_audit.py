@@ -22,9 +22,9 @@ from gate.artefacts.audit import (
     entry_hash,
     verify_chain,
 )
+from gate.artefacts.outputs import write_check_outputs
 from gate.errors import OutputError
-from gate.outputs import write_check_outputs
-from gate.verdict import Verdict
+from gate.judge.verdict import Verdict
 
 TODAY = dt.date(2026, 12, 1)
 

@@ -20,7 +20,7 @@ import pytest
 from conftest import make_docks_frame
 
 from gate.api import check
-from gate.outputs import write_check_outputs
+from gate.artefacts.outputs import write_check_outputs
 
 pytestmark = pytest.mark.browser
 

@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from gate.policy import packaged_policy_path
+from gate.policy.models import packaged_policy_path
 
 CliRunner = Callable[[list[Any]], Any]
 Writer = Callable[..., Path]

@@ -10,13 +10,13 @@ import pyarrow as pa
 import pytest
 
 import gate
-from gate.design import MAX_LEVELS, encode_block, finish_design, plan_design
+from gate.design.plan import MAX_LEVELS, encode_block, finish_design, plan_design
 from gate.errors import DesignError, TableError
-from gate.passes import main_pass
-from gate.policy import Policy
-from gate.statistics import CentredGram
-from gate.table import ArrowTableSource, from_dataframe
-from gate.verdict import Verdict
+from gate.judge.verdict import Verdict
+from gate.policy.models import Policy
+from gate.read.sources import ArrowTableSource, from_dataframe
+from gate.stats.accumulators import CentredGram
+from gate.stats.local import main_pass
 
 
 def policy(**overrides: Any) -> Policy:
@@ -171,7 +171,7 @@ def test_finish_design_names_and_selection() -> None:
     source = from_dataframe(frame)
     plan = plan_design(source, policy())
     values = np.array([[1.0, 0, 1, 0], [2.0, 1, 0, 0], [3.0, 0, 0, 1], [5.0, 1, 0, 0]])
-    design = finish_design(plan, CentredGram.from_block(values), main_pass(source, plan)[1])
+    design = finish_design(plan, CentredGram.from_block(values).mean, main_pass(source, plan)[1])
     assert design.features == ("load_t", "depot=b", "depot=c")
     assert design.selection == (0, 2, 3)
 

@@ -9,7 +9,7 @@ from typing import Any
 
 import pytest
 
-from gate.diffing import diff_verdicts
+from gate.judge.diff import diff_verdicts
 
 
 def _finding(rule: str, features: list[str], level: str = "fail", waived: bool = False,

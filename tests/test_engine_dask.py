@@ -21,9 +21,9 @@ import pyarrow.parquet as pq
 import pytest
 
 import gate
-from gate.cli import main as cli_main
-from gate.engine_dask import path_partitions
-from gate.policy import parse_policy
+from gate.cli.main import main as cli_main
+from gate.policy.models import parse_policy
+from gate.stats.dask import path_partitions
 from tests.test_streaming import (
     DEPENDENCY_POLICY,
     LONGLEY_POLICY,

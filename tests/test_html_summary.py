@@ -21,7 +21,7 @@ from conftest import make_clean_frame, make_docks_frame, policy_from
 import gate.artefacts.html_summary as summary
 from gate.api import check
 from gate.artefacts.html_summary import CSP, summary_html
-from gate.verdict import Verdict
+from gate.judge.verdict import Verdict
 
 TODAY = dt.date(2026, 12, 1)
 HOSTILE = "<script>alert(1)</script>"
@@ -230,7 +230,7 @@ def test_check_writes_summary_next_to_verdict(tmp_path: Path, run_cli: Any,
 
 
 def test_great_tables_is_imported_only_to_write_html() -> None:
-    code = ("import sys, gate, gate.cli, gate.outputs, gate.api; "
+    code = ("import sys, gate, gate.cli.main, gate.artefacts.outputs, gate.api; "
             "print('great_tables' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True).stdout

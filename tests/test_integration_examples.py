@@ -106,9 +106,8 @@ def test_pipeline_task_example_runs(tmp_path: Path) -> None:
 
 
 def test_pipeline_task_function_raises_its_own_error(tmp_path: Path) -> None:
-    from gate.examples.pipeline_task import FeatureTableRejected, validate_station_features
-
     from gate.errors import GateFailed
+    from gate.examples.pipeline_task import FeatureTableRejected, validate_station_features
 
     good, bad = tiny_tables(tmp_path)
     summary = validate_station_features(good, None, tmp_path / "ok", run_id="1")

@@ -11,9 +11,9 @@ import pandas as pd
 import pytest
 
 import gate
-from gate.judge import Finding, status_of
-from gate.policy import Policy
-from gate.verdict import Verdict
+from gate.judge.rules import Finding, status_of
+from gate.judge.verdict import Verdict
+from gate.policy.models import Policy
 
 TODAY = dt.date(2026, 12, 2)
 
@@ -258,7 +258,7 @@ def test_a_featureless_finding_is_not_waived_by_a_feature_waiver() -> None:
 
 def test_effective_rows_never_round_to_zero() -> None:
     # n / VIF (variance of a coefficient grows by VIF): 3,000 / 32,877 = 0.091 rows.
-    from gate.judge import effective_rows_label
+    from gate.judge.rules import effective_rows_label
 
     assert effective_rows_label(3_000, 32_877.0) == "0.091"
     assert effective_rows_label(3_965, 515.0) == "7.7"

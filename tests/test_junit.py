@@ -20,7 +20,7 @@ from conftest import make_clean_frame, make_docks_frame, policy_from
 
 from gate.api import check
 from gate.artefacts.junit import junit_xml
-from gate.verdict import Verdict
+from gate.judge.verdict import Verdict
 
 TODAY = dt.date(2026, 12, 1)
 SUITE_ATTRIBUTES = {"name", "tests", "failures", "errors", "skipped", "time", "timestamp"}

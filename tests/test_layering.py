@@ -1,15 +1,16 @@
-"""Data flows one way: a module imports only modules of earlier layers (ast-parsed, so imports
-inside functions count too; imports under ``if TYPE_CHECKING:`` are type-only and exempt).
+"""Data flows one way: every import points down the pipeline (ast-parsed, so imports inside
+functions count too; imports under ``if TYPE_CHECKING:`` are type-only and exempt), and the
+module graph has no cycles.
 
-To add a module: put it in ORDER (core stages) or in PLACED_AFTER (everything else), naming the
-entry it comes right after. A module in neither fails the test, so nobody adds a module without
-deciding where it sits.
+The package is one folder per stage. A module's layer is its stage (the first part of its
+dotted name); a module may import its own stage's modules and any earlier stage's, never a later
+one's. There is no list of exceptions: a new stage folder must be placed in STAGES, and a new
+module inside an existing folder is placed by its folder.
 """
 
 from __future__ import annotations
 
 import ast
-import fnmatch
 from pathlib import Path
 
 import pytest
@@ -18,45 +19,26 @@ ROOT = Path(__file__).resolve().parents[1]
 PACKAGE = ROOT / "gate"
 EXAMPLES = ROOT / "examples"  # installed as gate.examples
 
-#: The core stages, in data-flow order. ``statistics`` is a pure-numpy leaf (no gate imports)
-#: and sits before ``design``, whose finish step reads the main pass's means.
-ORDER: list[str] = [
-    "errors",
-    "statistics",
-    "policy",
-    "table",
-    "design",
-    "diagnostics",
-    "passes",
-    "judge",
-    "verdict",
-    "api",
-    "artefacts",
-    "artefacts.files",
-    "artefacts.*",
-    "outputs",
-    "examples",
-    "examples.bike_share_demand",  # the invented demo data; other examples build on it
-    "examples.*",
-    "demo",
-    "cli",
-    "__init__",
+#: The stages in data-flow order; each entry is a top-level module or folder of ``gate/``.
+STAGES: list[str] = [
+    "errors",     # exception tree; imports nothing of gate at run time
+    "numerics",   # the only copy of each numerical kernel (pure numpy/scipy, no gate imports)
+    "policy",     # policy models, the only YAML reader, the starter policy
+    "read",       # table sources: files, folders, frames; provenance
+    "design",     # policy columns -> design plan, encoded blocks, finished design
+    "stats",      # streaming statistics: accumulators, exact-pass routing, engines
+    "diagnose",   # statistics -> Diagnostics (arrays only)
+    "judge",      # rules, waivers, findings, the Verdict and its document
+    "remedies",   # structural terms, suggest's search (through the judge), policy editing
+    "artefacts",  # writers: verdict.json, HTML, JUnit, audit log, matrices, terminal text
+    "api",        # check(): the only place that knows the order of the stages
+    "sklearn",    # optional scikit-learn step over the API
+    "examples",   # the invented demo data (gate.examples)
+    "cli",        # main(argv) -> int, one module per command group
+    "bench",      # thin entry point to benchmarks/ (outside the package)
+    "__init__",   # the front door: re-exports the public names
     "__main__",
 ]
-
-#: Modules outside the core stages, each placed right after an ORDER entry (same rank).
-PLACED_AFTER: dict[str, str] = {
-    "suggest": "api",  # remedies: reads diagnostics and verdicts, run by the CLI
-    "segments": "passes",  # one pass, one mergeable Gram per segment key
-    "structural": "passes",  # squares/products: reads a small sample; the verdict carries them
-    "sklearn": "api",  # optional scikit-learn step: runs gate.api.check on fit
-    "schemas": "outputs",  # JSON Schemas of the policy and verdict documents
-    "policy_template": "outputs",  # `gate policy init`
-    "diffing": "outputs",  # `gate diff`: compares verdict.json documents
-    "progress": "passes",  # the progress line the passes report rows to (no gate imports)
-    "engine_dask": "passes",  # the Dask engine: same passes on a cluster (optional extra)
-    "bench": "__init__",  # `python -m gate.bench`: times `gate check` via the public API
-}
 
 
 def module_files() -> dict[str, Path]:
@@ -70,16 +52,11 @@ def module_files() -> dict[str, Path]:
 
 
 def rank_of(module: str) -> float:
-    """Position in ORDER: exact names first, then globs; PLACED_AFTER shares its anchor's rank
-    plus a half, so placed modules may import their anchor but not the next stage."""
-    if module in ORDER:
-        return float(ORDER.index(module))
-    if module in PLACED_AFTER:
-        return rank_of(PLACED_AFTER[module]) + 0.5
-    for position, entry in enumerate(ORDER):
-        if "*" in entry and fnmatch.fnmatchcase(module, entry):
-            return float(position)
-    raise KeyError(module)
+    """Position of the module's stage in STAGES (the first part of its dotted name)."""
+    stage = module.split(".")[0]
+    if stage not in STAGES:
+        raise KeyError(module)
+    return float(STAGES.index(stage))
 
 
 def _is_type_checking(node: ast.If) -> bool:
@@ -137,14 +114,32 @@ def test_every_module_has_a_place() -> None:
             rank_of(module)
         except KeyError:
             unplaced.append(module)
-    assert not unplaced, (f"modules without a layer: {unplaced}; add each to ORDER or "
-                          "PLACED_AFTER in tests/test_layering.py")
+    assert not unplaced, (f"modules without a stage: {unplaced}; add the folder to STAGES in "
+                          "tests/test_layering.py")
 
 
-def test_placement_table_names_real_anchors() -> None:
-    for module, anchor in PLACED_AFTER.items():
-        assert anchor in ORDER, (module, anchor)
-        assert module not in ORDER
+def test_no_import_cycles() -> None:
+    """Within a stage, modules may import each other, but never in a circle."""
+    files = module_files()
+    graph = {m: {i for i in gate_imports(files[m], m) if i in files} for m in files}
+    state: dict[str, int] = {}  # 1 = on the current path, 2 = done
+
+    def visit(node: str, path: list[str]) -> list[str] | None:
+        state[node] = 1
+        for nxt in sorted(graph[node]):
+            if state.get(nxt) == 1:
+                return path + [node, nxt]
+            if nxt not in state:
+                found = visit(nxt, path + [node])
+                if found:
+                    return found
+        state[node] = 2
+        return None
+
+    for start in sorted(graph):
+        if start not in state:
+            cycle = visit(start, [])
+            assert cycle is None, f"import cycle: {' -> '.join(cycle)}"
 
 
 @pytest.mark.parametrize("module", ALL_MODULES)
@@ -161,18 +156,18 @@ def test_imports_only_earlier_layers(module: str) -> None:
         except KeyError:
             bad.append(f"{imported} (no layer)")
             continue
-        if other >= own:
+        if other > own:
             bad.append(imported)
     assert not bad, f"gate.{module} imports later or same-layer modules: {bad}"
 
 
 def test_the_checker_catches_a_backward_import(tmp_path: Path) -> None:
     # The test must be able to fail: a stage importing a later one is caught.
-    fake = tmp_path / "design.py"
-    fake.write_text("def f():\n    from gate.verdict import Verdict\n    return Verdict\n")
-    assert gate_imports(fake, "design") == {"verdict"}
-    assert rank_of("verdict") > rank_of("design")
+    fake = tmp_path / "plan.py"
+    fake.write_text("def f():\n    from gate.judge.verdict import Verdict\n    return Verdict\n")
+    assert gate_imports(fake, "design.plan") == {"judge.verdict"}
+    assert rank_of("judge.verdict") > rank_of("design.plan")
     typed = tmp_path / "errors.py"
     typed.write_text("from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n"
-                     "    from gate.verdict import Verdict\n")
+                     "    from gate.judge.verdict import Verdict\n")
     assert gate_imports(typed, "errors") == set()

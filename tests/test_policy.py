@@ -20,7 +20,7 @@ import yaml
 from pydantic import BaseModel, ValidationError
 
 from gate.errors import PolicyError
-from gate.policy import (
+from gate.policy.models import (
     Policy,
     load_policy,
     packaged_policy_path,
@@ -344,7 +344,7 @@ def test_meta_test_helpers_see_every_model() -> None:
 
 def test_bare_yaml_off_means_level_off() -> None:
     # YAML 1.1 (PyYAML) reads a bare `off` as False; interface.md documents `level: off`.
-    from gate.policy import parse_policy
+    from gate.policy.models import parse_policy
 
     policy = parse_policy("policy_version: 1\nname: x\nlimits:\n  vif: {max: 5, level: off}\n")
     assert policy.limits.vif.level == "off"

@@ -22,9 +22,9 @@ from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
 import gate
-from gate.policy import Policy
-from gate.statistics import CentredGram, TriangularFactor
-from gate.verdict import Verdict
+from gate.judge.verdict import Verdict
+from gate.policy.models import Policy
+from gate.stats.accumulators import CentredGram, TriangularFactor
 
 PROPERTY_SETTINGS = settings(max_examples=40, deadline=None,
                              suppress_health_check=[HealthCheck.too_slow])

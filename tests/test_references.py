@@ -19,9 +19,9 @@ from statsmodels.stats.outliers_influence import variance_inflation_factor
 from statsmodels.tools import add_constant
 
 import gate
-from gate.diagnostics import INTERCEPT
-from gate.policy import Policy
-from gate.verdict import Verdict
+from gate.numerics.kernels import INTERCEPT
+from gate.judge.verdict import Verdict
+from gate.policy.models import Policy
 
 Recorder = Callable[[str, float], None]
 SEED = 20261202

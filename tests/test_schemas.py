@@ -18,9 +18,9 @@ from conftest import make_clean_frame, make_docks_frame, policy_from
 
 from gate.api import check
 from gate.artefacts.verdict_json import verdict_json
-from gate.policy import packaged_policy_path
-from gate.policy_template import STARTER_POLICY
-from gate.schemas import policy_schema, verdict_schema
+from gate.judge.document import policy_schema, verdict_schema
+from gate.policy.models import packaged_policy_path
+from gate.policy.template import STARTER_POLICY
 
 TODAY = dt.date(2026, 12, 1)
 VALIDATOR = jsonschema.Draft202012Validator

@@ -18,13 +18,13 @@ import pytest
 
 from gate.api import check
 from gate.artefacts.verdict_json import verdict_json
-from gate.design import plan_design
+from gate.design.plan import plan_design
 from gate.errors import TableError
-from gate.passes import main_pass
-from gate.policy import Policy
-from gate.segments import segment_pass, segment_policy
-from gate.suggest import suggest
-from gate.table import ArrowTableSource, Column
+from gate.policy.models import Policy
+from gate.read.sources import ArrowTableSource, Column
+from gate.remedies.search import suggest
+from gate.stats.local import main_pass
+from gate.stats.segments import segment_pass, segment_policy
 
 SEED = 20261202
 
@@ -212,3 +212,39 @@ def test_summary_html_has_a_segment_overview_and_effective_rows() -> None:
     assert "move its features apart" in page
     plain = summary_html(check(zoned_frame().drop(columns="zone")))
     assert 'id="sec-segments"' not in plain
+
+
+def _inf_frame() -> pd.DataFrame:
+    rng = np.random.default_rng(20261202)
+    frame = pd.DataFrame({"a": rng.normal(size=30), "b": rng.normal(size=30),
+                          "zone": ["x", "y", "z"] * 10})
+    frame.loc[[7, 12, 20], "a"] = np.inf
+    return frame
+
+
+@pytest.mark.parametrize("segments", [False, True])
+def test_infinite_values_are_counted_over_the_whole_table_with_or_without_segments(
+        segments: bool) -> None:
+    # Segments are the same main pass split by key: same count, same row range.
+    policy = Policy.model_validate({"policy_version": 1, "name": "inf", **(
+        {"segments": {"by": ["zone"], "min_rows": 2}} if segments else {})})
+    with pytest.raises(Exception) as caught:
+        check(_inf_frame(), policy, chunk_rows=5)
+    assert "3 infinite values (the first in rows 5-9)" in str(caught.value)
+
+
+def test_segment_counts_missing_rows_per_segment_and_whole() -> None:
+    rng = np.random.default_rng(7)
+    frame = pd.DataFrame({"a": rng.normal(size=30), "b": rng.normal(size=30),
+                          "zone": ["x", "y", "z"] * 10})
+    frame.loc[[0, 3, 6, 9, 12, 15, 18, 21, 24, 27], "a"] = np.nan  # every row of zone x
+    frame.loc[[1], "b"] = np.nan  # one row of zone y
+    policy = Policy.model_validate({"policy_version": 1, "name": "missing",
+                                    "segments": {"by": ["zone"], "min_rows": 2}})
+    verdict = check(frame, policy, chunk_rows=4)
+    by_label = {s.label: s for s in verdict.segments}
+    assert (by_label["zone=x"].rows, by_label["zone=x"].rows_used) == (10, 0)
+    assert not by_label["zone=x"].judged
+    assert (by_label["zone=y"].rows, by_label["zone=y"].rows_used) == (10, 9)
+    assert (by_label["zone=z"].rows, by_label["zone=z"].rows_used) == (10, 10)
+    assert verdict.table.rows_used == 19 and verdict.table.missing == {"a": 10, "b": 1}

@@ -13,7 +13,7 @@ from sklearn.linear_model import LinearRegression, LogisticRegression
 from sklearn.pipeline import Pipeline, make_pipeline
 
 from gate.errors import GateFailed
-from gate.policy import Policy
+from gate.policy.models import Policy
 from gate.sklearn import CollinearityGate, CollinearityWarning
 
 SEED = 20261202

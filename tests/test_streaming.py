@@ -29,13 +29,13 @@ from pyarrow import feather
 from statsmodels.stats.outliers_influence import variance_inflation_factor
 
 import gate
-from gate import table as table_module
-from gate.cli import main as cli_main
-from gate.diagnostics import Diagnostics
-from gate.policy import parse_policy
-from gate.progress import RowProgress
-from gate.table import ParquetSource
-from gate.verdict import Verdict
+from gate.cli.main import main as cli_main
+from gate.diagnose.diagnostics import Diagnostics
+from gate.judge.verdict import Verdict
+from gate.policy.models import parse_policy
+from gate.read import sources as table_module
+from gate.read.sources import ParquetSource
+from gate.stats.progress import RowProgress
 
 RTOL = 1e-10
 SEED = 20261202

@@ -125,12 +125,12 @@ def test_linear_near_duplicate_is_not_called_a_square() -> None:
 
 def test_no_breach_means_no_extra_read(clean_frame: pd.DataFrame,
                                        monkeypatch: pytest.MonkeyPatch) -> None:
-    import gate.structural
+    import gate.diagnose.structural
 
     def refuse(*args: object, **kwargs: object) -> None:
         raise AssertionError("the sample must not be read when no VIF breaches")
 
-    monkeypatch.setattr(gate.structural, "read_sample", refuse)
+    monkeypatch.setattr(gate.diagnose.structural, "read_sample", refuse)
     verdict = check(clean_frame)
     assert verdict.structural == () and verdict.status != "fail"
 

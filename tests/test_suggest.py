@@ -16,8 +16,8 @@ import pytest
 
 from gate.api import check
 from gate.errors import DesignError
-from gate.policy import Policy, load_policy, parse_policy
-from gate.suggest import escape_glob, policy_with_exclusions, suggest
+from gate.policy.models import Policy, load_policy, parse_policy
+from gate.remedies.search import escape_glob, policy_with_exclusions, suggest
 
 SEED = 20261202
 VIF_ONLY = Policy.model_validate({"name": "vif-only", "limits": {

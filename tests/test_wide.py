@@ -16,11 +16,11 @@ import pyarrow.parquet as pq
 import pytest
 
 import gate
+from gate.artefacts.outputs import write_check_outputs
 from gate.artefacts.terminal import summary_lines
 from gate.artefacts.verdict_json import verdict_json
-from gate.cli import main as cli_main
-from gate.outputs import write_check_outputs
-from gate.policy import parse_policy
+from gate.cli.main import main as cli_main
+from gate.policy.models import parse_policy
 
 SEED = 20261202
 LIMIT = 0.8  # the packaged default's pairwise_correlation.max

@@ -35,7 +35,7 @@ from pathlib import Path
 from typing import Any
 
 from gate.errors import OutputError
-from gate.verdict import Verdict
+from gate.judge.verdict import Verdict
 
 GENESIS = "0" * 64
 ENTRY_KEYS = ("hash", "label", "policy_sha256", "prev", "seq", "status", "table",

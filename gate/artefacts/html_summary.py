@@ -26,13 +26,13 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from gate.artefacts.files import write_atomic
-from gate.diagnostics import INTERCEPT
-from gate.judge import INTERCEPT_NAME, Finding, describe_dependency, effective_rows_label
+from gate.judge.rules import INTERCEPT_NAME, Finding, describe_dependency, effective_rows_label
+from gate.numerics.kernels import INTERCEPT
 
 if TYPE_CHECKING:
     from great_tables import GT
 
-    from gate.verdict import Verdict
+    from gate.judge.verdict import Verdict
 
 #: Rows shown per table before the rest is summarised in a note (verdict.json has them all).
 MAX_FEATURE_ROWS = 250

@@ -26,9 +26,9 @@ from collections import Counter
 from pathlib import Path
 
 from gate.artefacts.files import write_atomic
-from gate.judge import Finding
-from gate.policy import RULES
-from gate.verdict import Verdict
+from gate.judge.rules import Finding
+from gate.judge.verdict import Verdict
+from gate.policy.models import RULES
 
 SUITE_NAME = "collinearity-gate"
 #: Test cases per rule before the rest (the least severe) is folded into one case; a design

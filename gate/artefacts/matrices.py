@@ -27,9 +27,9 @@ from pathlib import Path
 import numpy as np
 
 from gate.artefacts.files import write_atomic
-from gate.diagnostics import INTERCEPT
-from gate.judge import INTERCEPT_NAME
-from gate.verdict import Verdict
+from gate.judge.rules import INTERCEPT_NAME
+from gate.judge.verdict import Verdict
+from gate.numerics.kernels import INTERCEPT
 
 
 def matrices(verdict: Verdict) -> dict[str, np.ndarray]:

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from gate.verdict import Verdict
+from gate.judge.verdict import Verdict
 
 SHOWN_FINDINGS = 8
 _ORDER = {"fail": 0, "warn": 1, "info": 2}

@@ -6,7 +6,7 @@ import json
 from pathlib import Path
 
 from gate.artefacts.files import write_atomic
-from gate.verdict import Verdict
+from gate.judge.verdict import Verdict
 
 
 def verdict_json(verdict: Verdict) -> str:

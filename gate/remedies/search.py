@@ -1,6 +1,6 @@
 """Remedies: the smallest set of features to drop so every fail-level limit passes.
 
-Works from a finished :class:`~gate.verdict.Verdict` only: the correlation matrix (p x p) and the
+Works from a finished :class:`~gate.judge.verdict.Verdict` only: the correlation matrix (p x p) and the
 means and scales in its diagnostics. No row is read again, whatever the number of candidate
 sets tried, because every limit is a function of the correlation submatrix of the kept columns
 (and, for the condition number, of their means and scales):
@@ -9,8 +9,8 @@ sets tried, because every limit is a function of the correlation submatrix of th
 * GVIF_G = det(C_GG) det([C_KK^-1]_GG) (Fox & Monette 1992, JASA 87:178-183), judged as
   GVIF^(1/df);
 * |r| from C itself;
-* condition indices from the structured factor of [1, X_K] exactly as in ``gate.diagnostics``
-  (:func:`gate.diagnostics.condition_indices`; Belsley, Kuh & Welsch 1980, ch. 3).
+* condition indices from the structured factor of [1, X_K] exactly as in ``gate.diagnose.diagnostics``
+  (:func:`gate.diagnose.diagnostics.condition_indices`; Belsley, Kuh & Welsch 1980, ch. 3).
 
 Units. A numeric feature is one unit; a categorical column (all its dummies) is one unit and
 drops as a whole. ``--keep`` units are never dropped.
@@ -64,12 +64,12 @@ import numpy as np
 import scipy.linalg as sla
 import yaml
 
-from gate.design import Design
-from gate.diagnostics import Diagnostics, IntArray, condition_indices
+from gate.design.plan import Design
+from gate.diagnose.diagnostics import Diagnostics
 from gate.errors import DesignError, PolicyError
-from gate.policy import Policy, parse_policy, today_utc
-from gate.statistics import FloatArray
-from gate.verdict import Verdict
+from gate.judge.verdict import Verdict
+from gate.numerics.kernels import FloatArray, IntArray, condition_indices
+from gate.policy.models import Policy, parse_policy, today_utc
 
 Method = Literal["auto", "exact", "greedy"]
 #: Drop priority of a unit: (preference key, design position); smaller = dropped sooner.
@@ -380,7 +380,7 @@ class _Problem:
         indices = condition_indices(d.weight_sum, d.means, kept, r, d.scales, self.scaling)
         if indices.size == 0 or not indices[-1] > self.cond_max:
             return []
-        from gate.diagnostics import scaled_design_factor
+        from gate.numerics.kernels import scaled_design_factor
 
         factor, columns = scaled_design_factor(d.weight_sum, d.means, kept, r, d.scales,
                                                self.scaling)
@@ -456,7 +456,7 @@ class _Problem:
         """Rows spanning the null space of the design (standardised coefficients)."""
         rows: list[FloatArray] = []
         labels: list[str] = []
-        from gate.judge import describe_dependency
+        from gate.judge.rules import describe_dependency
 
         for dep in self.d.dependencies:
             row = np.zeros(len(self.names))

@@ -1,6 +1,6 @@
 """The Dask engine: partition statistics on the workers, merged in a tree.
 
-Every statistic the gate needs is mergeable (``gate.statistics``), so each partition is
+Every statistic the gate needs is mergeable (``gate.stats.accumulators``), so each partition is
 reduced on a worker to a few p x p numbers and only those travel: the levels pass (distinct
 values of the categorical columns), the main pass (``CentredGram`` and row counts per
 partition, merged with Chan's pairwise update) and, when the Gram cannot settle the rank,
@@ -27,12 +27,9 @@ from typing import Any, Self, TypeVar
 
 import pyarrow as pa
 
-from gate.design import DesignPlan, RowCounts, distinct_values, encode_block
-from gate.diagnostics import ExactPassPlan, exact_pass_block
+from gate.design.plan import DesignPlan, RowCounts, distinct_values, encode_block
 from gate.errors import TableError
-from gate.passes import ProgressFactory
-from gate.statistics import CentredGram, TriangularFactor
-from gate.table import (
+from gate.read.sources import (
     DEFAULT_CHUNK_ROWS,
     PARQUET_BUFFER_BYTES,
     SUFFIXES,
@@ -46,6 +43,9 @@ from gate.table import (
     open_path,
     row_group_chunks,
 )
+from gate.stats.accumulators import CentredGram, TriangularFactor
+from gate.stats.local import ProgressFactory
+from gate.stats.routing import ExactPassPlan, exact_pass_block
 
 #: Workers of the local cluster started when no scheduler is given.
 LOCAL_WORKERS = 2

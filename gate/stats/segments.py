@@ -3,7 +3,7 @@
 ``CentredGram`` is mergeable (Chan, Golub & LeVeque 1979), so each chunk is split by the
 segment key and each piece folds into its segment's Gram; the whole table's Gram is the merge
 of the segments' Grams (exact in exact arithmetic, whatever the order). Nothing is read twice
-in the main pass; an exact TSQR pass (``gate.passes.exact_pass``) reads a segment again only
+in the main pass; an exact TSQR pass (``gate.stats.local.exact_pass``) reads a segment again only
 when that segment's Gram cannot settle its rank, through :class:`SegmentSource`.
 """
 
@@ -16,11 +16,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from gate.design import DesignPlan, RowCounts, encode_block
+from gate.design.plan import DesignPlan, RowCounts
 from gate.errors import TableError
-from gate.policy import Policy
-from gate.statistics import CentredGram
-from gate.table import DEFAULT_CHUNK_ROWS, Column, TableSource
+from gate.policy.models import Policy
+from gate.read.sources import DEFAULT_CHUNK_ROWS, Column, TableSource
+from gate.stats.accumulators import CentredGram
+from gate.stats.local import ProgressFactory, encoded_chunks
 
 #: More segments than this is almost always a mistake (an identifier as the segment column).
 MAX_SEGMENTS = 1000
@@ -114,30 +115,36 @@ def _order(key: SegmentKey) -> tuple[tuple[int, str], ...]:
 
 
 def segment_pass(source: TableSource, plan: DesignPlan, by: Sequence[str], *,
-                 chunk_rows: int | None = None) -> SegmentPass:
-    """One pass: a CentredGram and row counts per segment key, and their merge."""
+                 chunk_rows: int | None = None, progress: ProgressFactory | None = None
+                 ) -> SegmentPass:
+    """The main pass split by a key: a CentredGram and row counts per segment, and their merge.
+
+    Each chunk is encoded once (``gate.stats.local.encoded_chunks``, the same pass as the whole
+    table's), then its used rows are split by key; counts come from the per-row masks."""
     check_segment_columns(source, by)
     width = len(plan.layout)
     columns = tuple(dict.fromkeys(plan.read_columns + tuple(by)))
     grams: dict[SegmentKey, CentredGram] = {}
     counts: dict[SegmentKey, RowCounts] = {}
-    read = 0
-    for chunk in source.chunks(columns, plan.chunk_rows(chunk_rows)):
+    for chunk, block in encoded_chunks(source, plan, columns, chunk_rows=chunk_rows,
+                                       progress=progress):
         local, keys = chunk_keys(chunk, by)
-        order = np.argsort(local, kind="stable")
-        ordered = chunk.take(pa.array(order))
-        bounds = np.searchsorted(local[order], np.arange(len(keys) + 1))
+        used_local = local if block.used is None else local[block.used]
         for k, key in enumerate(keys):
-            start, stop = int(bounds[k]), int(bounds[k + 1])
-            piece = ordered.slice(start, stop - start)
-            values, weights, piece_counts = encode_block(plan, piece, first_row=read)
-            block = CentredGram.from_block(values, weights)
-            grams[key] = grams[key].merge(block) if key in grams else block
-            counts[key] = counts[key].add(piece_counts) if key in counts else piece_counts
+            rows = local == k
+            piece = used_local == k
+            weights = None if block.weights is None else block.weights[piece]
+            part = CentredGram.from_block(block.values[piece], weights)
+            missing = {name: int(np.count_nonzero(mask & rows))
+                       for name, mask in block.missing.items()}
+            read = int(np.count_nonzero(rows))
+            part_counts = RowCounts(read, read - int(np.count_nonzero(piece)),
+                                    {name: m for name, m in missing.items() if m})
+            grams[key] = grams[key].merge(part) if key in grams else part
+            counts[key] = counts[key].add(part_counts) if key in counts else part_counts
         if len(grams) > MAX_SEGMENTS:
             raise TableError(f"{source.name}: segments.by ({', '.join(by)}) gives more than "
                              f"{MAX_SEGMENTS} segments; segment by a coarser column")
-        read += chunk.num_rows
     whole_gram = CentredGram.empty(width)
     whole_counts = RowCounts()
     segments: list[SegmentStatistics] = []

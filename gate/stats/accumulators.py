@@ -10,7 +10,7 @@ any order and the result depends on the split only through rounding:
 * :class:`TriangularFactor` -- the R factor of the centred, scaled, weighted rows, merged by
   stacking and re-factoring (TSQR; Demmel, Grigori, Hoemmen & Langou 2012, SIAM J. Sci. Comput.
   34:A206-A239). About 10x the cost of the Gram; run only when the Gram cannot tell an exact
-  dependency from a near one (see ``gate.diagnostics``).
+  dependency from a near one (see ``gate.diagnose.diagnostics``).
 
 Memory is O(p^2) for either, whatever the number of rows.
 """
@@ -20,9 +20,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from numpy.typing import NDArray
 
-FloatArray = NDArray[np.float64]
+from gate.numerics.kernels import FloatArray, IntArray
 
 
 @dataclass(frozen=True)
@@ -78,7 +77,7 @@ class CentredGram:
         comoment += np.outer(delta, delta) * (self.weight_sum * other.weight_sum / total)
         return CentredGram(self.rows + other.rows, total, mean, comoment)
 
-    def select(self, columns: NDArray[np.intp]) -> CentredGram:
+    def select(self, columns: IntArray) -> CentredGram:
         """The statistics of a subset of the columns (exact: no recomputation)."""
         return CentredGram(self.rows, self.weight_sum, self.mean[columns],
                            self.comoment[np.ix_(columns, columns)])

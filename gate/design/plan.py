@@ -22,9 +22,9 @@ import pyarrow.compute as pc
 from numpy.typing import NDArray
 
 from gate.errors import DesignError, TableError
-from gate.policy import Policy
-from gate.statistics import CentredGram, FloatArray
-from gate.table import DEFAULT_CHUNK_ROWS, TableSource
+from gate.numerics.kernels import FloatArray
+from gate.policy.models import Policy
+from gate.read.sources import DEFAULT_CHUNK_ROWS, TableSource
 
 #: One-hot encoding a column with more levels than this is almost always a mistake (an id).
 MAX_LEVELS = 500
@@ -252,15 +252,35 @@ def count_infinite(chunk: pa.Table, column: str) -> int:
     return int(pc.sum(pc.is_inf(values)).as_py() or 0)
 
 
+@dataclass(frozen=True)
+class EncodedBlock:
+    """One encoded chunk: ``values`` over ``plan.layout`` (used rows only), their weights, the
+    row counts, and per row of the chunk whether it was used and which columns were missing
+    (so a pass can split the chunk by a key and still count exactly)."""
+
+    values: FloatArray
+    weights: FloatArray | None
+    counts: RowCounts
+    used: NDArray[np.bool_] | None  # None: every row used
+    missing: dict[str, NDArray[np.bool_]]
+
+
 def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
                  ) -> tuple[FloatArray, FloatArray | None, RowCounts]:
     """One chunk -> (values over ``plan.layout``, weights or None, row counts)."""
+    block = encode_rows(plan, chunk, first_row=first_row)
+    return block.values, block.weights, block.counts
+
+
+def encode_rows(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0) -> EncodedBlock:
+    """One chunk -> :class:`EncodedBlock` (``first_row``: its first row's number in the table,
+    for messages)."""
     n = chunk.num_rows
     width = len(plan.layout)
     # Column-major: each feature is written contiguously and X'X on it is one BLAS call.
     values = np.empty((width, n)).T
     missing_rows = np.zeros(n, dtype=bool)
-    missing: dict[str, int] = {}
+    masks: dict[str, NDArray[np.bool_]] = {}
     position = 0
     for part in plan.parts:
         if isinstance(part, str):
@@ -273,9 +293,8 @@ def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
             dummies = values[:, position:position + len(part.levels)]
             dummies[...] = 0.0
             dummies[rows, codes[rows]] = 1.0
-            absent = n - rows.size
-            if absent:
-                missing[part.column] = absent
+            if rows.size < n:
+                masks[part.column] = ~present
                 missing_rows |= ~present
             position += len(part.levels)
 
@@ -290,7 +309,7 @@ def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
                                           first_row + n - 1)
             nan_rows = np.isnan(col)
             if nan_rows.any():
-                missing[layout[j]] = int(nan_rows.sum())
+                masks[layout[j]] = nan_rows
                 missing_rows |= nan_rows
 
     weights = None
@@ -299,6 +318,8 @@ def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
         _fill_float(weights, chunk.column(plan.weight))
         _check_weights(plan, weights, first_row)
 
+    missing = {name: int(mask.sum()) for name, mask in masks.items()}
+    used = None
     if missing:
         if plan.missing == "fail":
             name, count = next(iter(missing.items()))
@@ -306,12 +327,12 @@ def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
                               f"{'s' if count > 1 else ''} in rows {first_row:,}-"
                               f"{first_row + n - 1:,} and the policy says missing: fail; "
                               "fill them, or set missing: drop_rows")
-        keep = ~missing_rows
-        values = values[keep]
+        used = ~missing_rows
+        values = values[used]
         if weights is not None:
-            weights = weights[keep]
+            weights = weights[used]
     counts = RowCounts(read=n, dropped=int(missing_rows.sum()), missing=missing)
-    return values, weights, counts
+    return EncodedBlock(values, weights, counts, used, masks)
 
 
 def _fill_float(out: FloatArray, column: pa.ChunkedArray) -> None:
@@ -386,8 +407,9 @@ def _check_weights(plan: DesignPlan, weights: FloatArray, first_row: int) -> Non
                           f"value{'s' if count > 1 else ''} in {where}; weights must be >= 0")
 
 
-def finish_design(plan: DesignPlan, gram: CentredGram, counts: RowCounts) -> Design:
-    """Choose reference levels from what the used rows contain; name the design columns."""
+def finish_design(plan: DesignPlan, means: FloatArray, counts: RowCounts) -> Design:
+    """Choose reference levels from what the used rows contain (``means``: the main pass's
+    weighted column means, so a dummy's mean is its level's share); name the design columns."""
     features: list[str] = []
     selection: list[int] = []
     groups: list[Group] = []
@@ -399,7 +421,7 @@ def finish_design(plan: DesignPlan, gram: CentredGram, counts: RowCounts) -> Des
             selection.append(position)
             position += 1
             continue
-        present = [k for k in range(len(part.levels)) if gram.mean[position + k] > 0.0]
+        present = [k for k in range(len(part.levels)) if means[position + k] > 0.0]
         absent = [part.levels[k] for k in range(len(part.levels)) if k not in present]
         if absent:
             notes.append(f"column '{part.column}': level{'s' if len(absent) > 1 else ''} "

@@ -8,7 +8,7 @@ from pathlib import Path
 from gate.artefacts.files import write_atomic
 from gate.artefacts.verdict_json import verdict_json
 from gate.errors import OutputError
-from gate.verdict import Verdict
+from gate.judge.verdict import Verdict
 
 
 def write_check_outputs(verdict: Verdict, out_dir: Path, *, html: bool = True,

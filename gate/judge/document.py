@@ -1,6 +1,6 @@
 """JSON Schema for the policy file and for verdict.json, generated from pydantic models.
 
-The policy schema comes straight from :class:`gate.policy.Policy`. The verdict document is
+The policy schema comes straight from :class:`gate.policy.models.Policy`. The verdict document is
 produced by ``Verdict.to_dict`` (gate/verdict.py); the models below describe that document so
 its schema is generated, not hand-written, and ``tests/test_schemas.py`` validates real verdicts
 against it. Objects that later versions may extend allow extra keys; closed records (findings,
@@ -14,7 +14,7 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
-from gate.policy import Limits, Policy
+from gate.policy.models import Limits, Policy
 
 JSON_SCHEMA_DIALECT = "https://json-schema.org/draft/2020-12/schema"
 Number = float | None  # null stands for infinite or undefined (JSON has no inf/NaN)

@@ -26,11 +26,11 @@ from typing import Literal
 import numpy as np
 import scipy.linalg as sla
 
-from gate.design import Design, DesignPlan, encode_block
-from gate.diagnostics import Diagnostics
-from gate.policy import Policy
-from gate.statistics import FloatArray
-from gate.table import TableSource
+from gate.design.plan import Design, DesignPlan, encode_block
+from gate.diagnose.diagnostics import Diagnostics
+from gate.numerics.kernels import FloatArray
+from gate.policy.models import Policy
+from gate.read.sources import TableSource
 
 #: Rows read for the check (the first used rows of the table).
 SAMPLE_ROWS = 2048

@@ -24,28 +24,33 @@ design with one column per dependency dropped, which spans the same space, so it
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Literal
 
 import numpy as np
 import scipy.linalg as sla
-from numpy.typing import NDArray
 
-from gate.statistics import CentredGram, FloatArray, TriangularFactor
+from gate.numerics.kernels import (
+    EPS,
+    BoolArray,
+    FloatArray,
+    IntArray,
+    Scaling,
+    belsley_kuh_welsch,
+    correlation_block,
+    gvif,
+    scaled_design_factor,
+    squared_row_norms,
+    triangular_inverse,
+    upper_times_transpose,
+)
+from gate.stats.accumulators import CentredGram, TriangularFactor
+from gate.stats.routing import ExactPassPlan
 
-EPS = float(np.finfo(np.float64).eps)
-#: Smallest singular-value ratio of the standardised design that the Gram route decides on its
-#: own (about 100 x sqrt(eps)); below it an exact TSQR pass decides rank. Echoed in the verdict.
-GRAM_RESOLUTION = 1e-5
 #: Terms of a dependency whose standardised coefficient is below this (relative to the largest)
 #: are rounding noise, not part of the relation.
 DEPENDENCY_TERM_CUTOFF = 1e-8
-#: Intercept position in the condition-index column lists.
-INTERCEPT = -1
 
-Scaling = Literal["unit_length", "standardized"]
-IntArray = NDArray[np.intp]
-BoolArray = NDArray[np.bool_]
 
 
 @dataclass(frozen=True)
@@ -86,20 +91,6 @@ class ConditionDiagnostics:
     proportions: FloatArray
     columns: tuple[int, ...]  # design column of each proportions column; INTERCEPT = -1
     reduced: bool  # computed with one column per exact dependency dropped
-
-
-@dataclass(frozen=True)
-class ExactPassPlan:
-    """What the main pass decided, and what an exact pass (if needed) must factor."""
-
-    constant: BoolArray
-    needs_exact_pass: bool
-    columns: IntArray  # non-constant design columns, in design order
-    centre: FloatArray
-    scale: FloatArray
-    tolerance: float
-    cholesky: FloatArray | None = field(default=None, repr=False)  # Rt when the Gram sufficed
-    cholesky_inverse: FloatArray | None = field(default=None, repr=False)  # its inverse (dtrtri)
 
 
 @dataclass(frozen=True)
@@ -153,40 +144,6 @@ class Diagnostics:
         return [(int(k), float(coef[k])) for k in best]
 
 
-def default_tolerance(rows: int, columns: int) -> float:
-    """max(n, p+1) * eps: the relative singular-value cut-off of numpy's matrix_rank."""
-    return max(rows, columns + 1) * EPS
-
-
-def plan_exact_pass(gram: CentredGram, *, tolerance: float | None = None) -> ExactPassPlan:
-    """Find constants and decide whether the Gram alone can settle the rank."""
-    p = gram.mean.shape[0]
-    tol = default_tolerance(gram.rows, p) if tolerance is None else tolerance
-    centred_sq = np.clip(np.diag(gram.comoment).copy(), 0.0, None)
-    uncentred = np.sqrt(centred_sq + gram.weight_sum * gram.mean**2)
-    scale = np.sqrt(centred_sq)
-    constant = (scale <= tol * uncentred) | (uncentred == 0.0)
-    columns = np.flatnonzero(~constant)
-    centre, col_scale = gram.mean[columns], scale[columns]
-    if columns.size == 0:
-        return ExactPassPlan(constant, False, columns, centre, col_scale, tol, np.zeros((0, 0)))
-    corr = _correlation_block(gram.comoment, columns, col_scale)
-    if tol >= GRAM_RESOLUTION:
-        # The Gram resolves ratios above GRAM_RESOLUTION; a coarser tolerance is decided here.
-        return ExactPassPlan(constant, False, columns, centre, col_scale, tol, None)
-    rt, rt_inverse = _certified_cholesky(corr)
-    return ExactPassPlan(constant, rt is None, columns, centre, col_scale, tol, rt, rt_inverse)
-
-
-def exact_pass_block(plan: ExactPassPlan, values: FloatArray,
-                     weights: FloatArray | None) -> FloatArray:
-    """Rows of the exact pass: centred by the global means, scaled, times sqrt(weight)."""
-    block = (values[:, plan.columns] - plan.centre) / plan.scale
-    if weights is not None:
-        block *= np.sqrt(weights)[:, None]
-    return block
-
-
 def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
                         factor: TriangularFactor | None = None,
                         groups: tuple[tuple[int, ...], ...] = (),
@@ -197,7 +154,7 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
     nc = plan.columns
     correlation = np.full((p, p), np.nan)
     if nc.size:
-        correlation[np.ix_(nc, nc)] = _correlation_block(gram.comoment, nc, plan.scale)
+        correlation[np.ix_(nc, nc)] = correlation_block(gram.comoment, nc, plan.scale)
 
     rt, route, factor_scale = _standardised_factor(gram, plan, factor)
     unit_scales = scales.copy()  # the scale that makes each column of rt unit length
@@ -226,15 +183,15 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
     r_kept = rt if plan.cholesky is not None else _refactor_columns(rt, kept_local)
     # The certification already inverted Rt when the Gram sufficed: one dtrtri per check.
     r_inverse = plan.cholesky_inverse if plan.cholesky is not None \
-        and plan.cholesky_inverse is not None else _triangular_inverse(r_kept)
+        and plan.cholesky_inverse is not None else triangular_inverse(r_kept)
     vif = np.full(p, np.inf)
-    vif[kept] = np.einsum("ij,ij->i", r_inverse, r_inverse)
+    vif[kept] = squared_row_norms(r_inverse)
     vif[in_dependency] = np.inf
     inverse_correlation = np.full((p, p), np.nan)
     if kept.size == p:
-        inverse_correlation = _upper_times_transpose(r_inverse)
+        inverse_correlation = upper_times_transpose(r_inverse)
     else:
-        inverse_correlation[np.ix_(kept, kept)] = _upper_times_transpose(r_inverse)
+        inverse_correlation[np.ix_(kept, kept)] = upper_times_transpose(r_inverse)
 
     group_results = tuple(
         _group_inflation(g, in_dependency, correlation, inverse_correlation) for g in groups
@@ -254,45 +211,6 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
 
 # --- factors -------------------------------------------------------------------------------
 
-def _correlation_block(comoment: FloatArray, columns: IntArray, scale: FloatArray) -> FloatArray:
-    block = comoment[np.ix_(columns, columns)] / np.outer(scale, scale)
-    np.clip(block, -1.0, 1.0, out=block)  # |r| <= 1; rounding can land a duplicate at 1 + eps
-    np.fill_diagonal(block, 1.0)
-    return block
-
-
-def _certified_cholesky(corr: FloatArray) -> tuple[FloatArray | None, FloatArray | None]:
-    """Upper Cholesky factor of corr and its inverse if its singular values are certainly
-    resolved, else (None, None).
-
-    With A = Rt^-1: 1 / lambda_min = ||A||_2^2 <= min(||A||_F^2, ||A||_1 ||A||_inf), where
-    ||A||_F^2 = trace(corr^-1) = sum(VIF); and lambda_max <= min(p, ||corr||_inf) (Golub & Van
-    Loan, "Matrix Computations", 4th ed., 2.3.2 and 8.1). These O(p^2) bounds certify the
-    singular-value ratio without an eigen-decomposition in all but borderline cases; only then
-    do the eigenvalues decide.
-    """
-    try:
-        rt: FloatArray = np.asarray(sla.cholesky(corr, lower=False, check_finite=False))
-    except np.linalg.LinAlgError:
-        return None, None
-    inverse, info = sla.lapack.dtrtri(rt, lower=0)
-    inverse = np.asarray(inverse)
-    if info == 0 and np.all(np.isfinite(inverse)):
-        vif_sum = float(np.einsum("ij,ij->", inverse, inverse))
-        if vif_sum * corr.shape[0] * GRAM_RESOLUTION**2 < 1.0:
-            return rt, inverse
-        absolute = np.abs(inverse)
-        inverse_norm_sq = min(vif_sum, float(absolute.sum(axis=0).max())
-                              * float(absolute.sum(axis=1).max()))
-        largest = min(float(corr.shape[0]), float(np.abs(corr).sum(axis=1).max()))
-        if inverse_norm_sq * largest * GRAM_RESOLUTION**2 < 1.0:
-            return rt, inverse
-    eigenvalues = np.linalg.eigvalsh(corr)
-    if eigenvalues[0] >= (GRAM_RESOLUTION**2) * eigenvalues[-1]:
-        return rt, (inverse if info == 0 else None)
-    return None, None
-
-
 def _standardised_factor(
     gram: CentredGram, plan: ExactPassPlan, factor: TriangularFactor | None
 ) -> tuple[FloatArray, Literal["gram", "gram+tsqr"], FloatArray]:
@@ -310,7 +228,7 @@ def _standardised_factor(
         return r / norms, "gram+tsqr", plan.scale * norms
     # Coarse tolerance chosen by the policy: the Gram decides, through a pivoted Cholesky-free
     # route (eigen-decomposition of corr gives a factor that pivoted QR can read).
-    corr = _correlation_block(gram.comoment, plan.columns, plan.scale)
+    corr = correlation_block(gram.comoment, plan.columns, plan.scale)
     eigenvalues, vectors = np.linalg.eigh(corr)
     root = vectors * np.sqrt(np.clip(eigenvalues, 0.0, None))
     return np.asarray(np.linalg.qr(root.T, mode="r")), "gram", plan.scale
@@ -493,39 +411,6 @@ def _refactor_columns(rt: FloatArray, columns: IntArray) -> FloatArray:
     return r * signs[:, None]
 
 
-def _upper_times_transpose(upper: FloatArray) -> FloatArray:
-    """U U' for upper-triangular U (LAPACK dlauum: a third of the flops of a general product),
-    symmetric by construction."""
-    if upper.size == 0:
-        return np.zeros((0, 0))
-    product, info = sla.lapack.dlauum(upper, lower=0)
-    if info != 0:
-        raise np.linalg.LinAlgError(f"dlauum failed (info={info})")
-    top = np.triu(product)
-    return np.asarray(top + np.triu(top, 1).T)
-
-
-def _triangular_inverse(r: FloatArray) -> FloatArray:
-    if r.size == 0:
-        return np.zeros((0, 0))
-    inverse, info = sla.lapack.dtrtri(r, lower=0)
-    if info != 0:
-        raise np.linalg.LinAlgError("singular triangular factor after rank reduction")
-    return np.asarray(inverse)
-
-
-def _group_inflation(columns: tuple[int, ...], in_dependency: BoolArray, correlation: FloatArray,
-                     inverse_correlation: FloatArray) -> GroupInflation:
-    idx = np.asarray(columns, dtype=np.intp)
-    if in_dependency[idx].any():
-        return GroupInflation(columns, float("nan"), len(columns))
-    block = np.ix_(idx, idx)
-    sign_c, log_c = np.linalg.slogdet(correlation[block])
-    sign_p, log_p = np.linalg.slogdet(inverse_correlation[block])
-    gvif = float(np.exp(log_c + log_p)) if sign_c > 0 and sign_p > 0 else float("nan")
-    return GroupInflation(columns, gvif, len(columns))
-
-
 def _belsley(gram: CentredGram, kept: IntArray, r_kept: FloatArray, scales: FloatArray,
              scaling: Scaling, *, reduced: bool) -> ConditionDiagnostics:
     """Condition indices and variance-decomposition proportions (Belsley, Kuh & Welsch 1980).
@@ -534,49 +419,17 @@ def _belsley(gram: CentredGram, kept: IntArray, r_kept: FloatArray, scales: Floa
     the centred X, so the intercept's ill-conditioning is represented without squaring anything.
     """
     r, columns = scaled_design_factor(gram.weight_sum, gram.mean, kept, r_kept, scales, scaling)
-    if r.size == 0:
-        return ConditionDiagnostics(scaling, np.ones(0), np.zeros((0, 0)), columns, reduced)
-    _, mu, vt = sla.svd(r, full_matrices=False, check_finite=False, lapack_driver="gesdd")
-    indices = mu[0] / mu
-    phi = (vt.T / mu) ** 2  # phi[j, k] = v_jk^2 / mu_k^2
-    proportions = (phi / phi.sum(axis=1, keepdims=True)).T  # [k, j]; each column sums to 1
+    indices, proportions = belsley_kuh_welsch(r)
     return ConditionDiagnostics(scaling, indices, proportions, columns, reduced)
 
 
-def scaled_design_factor(weight_sum: float, means: FloatArray, kept: IntArray,
-                         r_kept: FloatArray, scales: FloatArray, scaling: Scaling
-                         ) -> tuple[FloatArray, tuple[int, ...]]:
-    """The factor whose singular values give the Belsley-Kuh-Welsch condition indices.
-
-    ``r_kept`` is the upper factor of the correlation matrix of the ``kept`` columns (any subset
-    of the design, e.g. a candidate set in ``gate.suggest``); ``scales`` are centred column
-    norms and ``means`` the (weighted) means over all design columns.
-
-    unit_length: [[sqrt(W), sqrt(W) m'], [0, R11]] with R11 = r_kept * s, each column scaled to
-    unit length (Belsley, Kuh & Welsch 1980, ch. 3); standardized: ``r_kept`` itself.
-    Returns the factor and the design column of each of its columns (INTERCEPT = -1).
-    """
-    if scaling == "standardized":
-        return r_kept, tuple(int(k) for k in kept)
-    root_w = np.sqrt(weight_sum)
-    k = kept.size
-    r = np.zeros((k + 1, k + 1))
-    r[0, 0] = root_w
-    r[0, 1:] = root_w * means[kept]
-    r[1:, 1:] = r_kept * scales[kept]
-    r = r / np.linalg.norm(r, axis=0)
-    return r, (INTERCEPT, *(int(c) for c in kept))
 
 
-def condition_indices(weight_sum: float, means: FloatArray, kept: IntArray, r_kept: FloatArray,
-                      scales: FloatArray, scaling: Scaling) -> FloatArray:
-    """Condition indices mu_max / mu_k (ascending) of the design restricted to ``kept``.
-
-    Singular values only (no proportions), for searches that evaluate many column subsets.
-    Belsley, Kuh & Welsch (1980), "Regression Diagnostics", ch. 3.
-    """
-    r, _ = scaled_design_factor(weight_sum, means, kept, r_kept, scales, scaling)
-    if r.size == 0:
-        return np.ones(0)
-    mu = sla.svd(r, compute_uv=False, check_finite=False, lapack_driver="gesdd")
-    return np.asarray(mu[0] / mu)
+def _group_inflation(columns: tuple[int, ...], in_dependency: BoolArray, correlation: FloatArray,
+                     inverse_correlation: FloatArray) -> GroupInflation:
+    idx = np.asarray(columns, dtype=np.intp)
+    if in_dependency[idx].any():
+        return GroupInflation(columns, float("nan"), len(columns))
+    block = np.ix_(idx, idx)
+    return GroupInflation(columns, gvif(correlation[block], inverse_correlation[block]),
+                          len(columns))

@@ -7,10 +7,10 @@ from importlib import resources
 from pathlib import Path
 
 from gate.api import check
+from gate.artefacts.outputs import write_check_outputs
 from gate.artefacts.terminal import summary_lines
 from gate.examples.bike_share_demand import DROPPED_IN_FIX, write_tables
-from gate.outputs import write_check_outputs
-from gate.policy import load_policy
+from gate.policy.models import load_policy
 
 POLICY_FILE = "bike_share_policy.yaml"
 

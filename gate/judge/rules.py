@@ -14,9 +14,10 @@ from typing import Literal
 
 import numpy as np
 
-from gate.design import Design
-from gate.diagnostics import INTERCEPT, Dependency, Diagnostics
-from gate.policy import Policy, Waiver
+from gate.design.plan import Design
+from gate.diagnose.diagnostics import Dependency, Diagnostics
+from gate.numerics.kernels import INTERCEPT
+from gate.policy.models import Policy, Waiver
 
 FindingLevel = Literal["fail", "warn", "info"]
 Status = Literal["pass", "warn", "fail"]

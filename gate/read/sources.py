@@ -285,7 +285,7 @@ class ArrowTableSource:
 class DaskFrameSource:
     """A dask DataFrame: read partition by partition (no dask import here; duck-typed).
 
-    The Dask engine (``gate.engine_dask``) computes each partition's statistics on the
+    The Dask engine (``gate.stats.dask``) computes each partition's statistics on the
     workers; :meth:`chunks` (partitions computed one at a time in this process) is the
     fallback that keeps this a plain :class:`TableSource`.
     """

@@ -2,31 +2,35 @@
 
 Each pass reads the table in chunks, encodes each chunk and folds it into a mergeable
 statistic, so peak memory is one chunk plus O(p^2) whatever the number of rows. The Dask
-engine (``gate.engine_dask``) offers the same three methods and runs them on a cluster.
+engine (``gate.stats.dask``) offers the same three methods and runs them on a cluster.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from types import TracebackType
 from typing import Protocol, Self
 
-from gate.design import (
+import pyarrow as pa
+
+from gate.design.plan import (
     DesignPlan,
+    EncodedBlock,
     InfiniteValuesError,
     RowCounts,
     count_infinite,
     distinct_values,
     encode_block,
+    encode_rows,
 )
-from gate.diagnostics import ExactPassPlan, exact_pass_block
-from gate.statistics import CentredGram, TriangularFactor
-from gate.table import TableSource
+from gate.read.sources import TableSource
+from gate.stats.accumulators import CentredGram, TriangularFactor
+from gate.stats.routing import ExactPassPlan, exact_pass_block
 
 
 class RowCounter(Protocol):
-    """What the passes report progress to (``gate.progress.RowProgress``)."""
+    """What the passes report progress to (``gate.stats.progress.RowProgress``)."""
 
     def advance(self, rows: int) -> None: ...
 
@@ -84,19 +88,34 @@ def main_pass(source: TableSource, plan: DesignPlan, *, chunk_rows: int | None =
     """Centred Gram over the accumulation layout, and the row counts."""
     gram = CentredGram.empty(len(plan.layout))
     counts = RowCounts()
+    for _, block in encoded_chunks(source, plan, plan.read_columns, chunk_rows=chunk_rows,
+                                   progress=progress):
+        gram = gram.merge(CentredGram.from_block(block.values, block.weights, overwrite=True))
+        counts = counts.add(block.counts)
+    return gram, counts
+
+
+def encoded_chunks(source: TableSource, plan: DesignPlan, columns: Sequence[str], *,
+                   chunk_rows: int | None, progress: ProgressFactory | None
+                   ) -> Iterator[tuple[pa.Table, EncodedBlock]]:
+    """The one main pass over the rows: each chunk (``columns``) with its encoding.
+
+    Every main pass (whole table, or split by a segment key) reads through here, so row numbers
+    in messages, the whole-table count of infinite values and the progress line are the same.
+    """
+    read = 0
     with _counting(progress, "reading rows", source.row_count) as advance:
-        chunks = iter(source.chunks(plan.read_columns, plan.chunk_rows(chunk_rows)))
+        chunks = iter(source.chunks(columns, plan.chunk_rows(chunk_rows)))
         for chunk in chunks:
             try:
-                values, weights, chunk_counts = encode_block(plan, chunk, first_row=counts.read)
+                block = encode_rows(plan, chunk, first_row=read)
             except InfiniteValuesError as exc:
                 # Read on (this column only) so the message gives the whole table's count.
                 total = exc.count + sum(count_infinite(rest, exc.column) for rest in chunks)
                 raise exc.with_total(total) from None
-            gram = gram.merge(CentredGram.from_block(values, weights, overwrite=True))
-            counts = counts.add(chunk_counts)
-            advance(chunk_counts.read)
-    return gram, counts
+            yield chunk, block
+            read += block.counts.read
+            advance(block.counts.read)
 
 
 def exact_pass(source: TableSource, plan: DesignPlan, selection: tuple[int, ...],

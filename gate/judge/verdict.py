@@ -9,12 +9,21 @@ import math
 from dataclasses import dataclass, replace
 from typing import Any
 
-from gate.design import Design
-from gate.diagnostics import GRAM_RESOLUTION, INTERCEPT, Diagnostics
+from gate.design.plan import Design
+from gate.diagnose.diagnostics import Diagnostics
+from gate.diagnose.structural import StructuralTerm
 from gate.errors import GateFailed
-from gate.judge import INTERCEPT_NAME, Finding, Status, WaiverState, describe_dependency, status_of
-from gate.policy import Policy
-from gate.structural import StructuralTerm
+from gate.judge.rules import (
+    INTERCEPT_NAME,
+    Finding,
+    Status,
+    WaiverState,
+    describe_dependency,
+    status_of,
+)
+from gate.numerics.kernels import INTERCEPT
+from gate.policy.models import Policy
+from gate.stats.routing import GRAM_RESOLUTION
 
 SCHEMA_VERSION = 1
 EXIT_CODES: dict[str, int] = {"pass": 0, "warn": 0, "fail": 1}

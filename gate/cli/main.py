@@ -52,7 +52,7 @@ def _add_table_arguments(command: argparse.ArgumentParser) -> None:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    from gate.verdict import tool_version
+    from gate.judge.verdict import tool_version
 
     parser = argparse.ArgumentParser(
         prog="gate", description="Check a feature table for multicollinearity against a policy.")
@@ -144,9 +144,9 @@ def _add_artefact_commands(commands: Any) -> None:
 
 def _run_check(args: argparse.Namespace) -> int:
     from gate.api import check
+    from gate.artefacts.outputs import write_check_outputs
     from gate.artefacts.terminal import summary_lines
-    from gate.outputs import write_check_outputs
-    from gate.progress import terminal_progress
+    from gate.stats.progress import terminal_progress
 
     if args.scheduler and args.engine != "dask":
         raise GateError("--scheduler needs --engine dask; add --engine dask")
@@ -203,7 +203,7 @@ def _run_audit_verify(args: argparse.Namespace) -> int:
 def _run_diff(args: argparse.Namespace) -> int:
     import json
 
-    from gate.diffing import diff_files
+    from gate.judge.diff import diff_files
 
     result = diff_files(args.old, args.new)
     if args.format == "json":
@@ -215,7 +215,7 @@ def _run_diff(args: argparse.Namespace) -> int:
 
 
 def _run_policy_init(args: argparse.Namespace) -> int:
-    from gate.policy_template import write_starter_policy
+    from gate.policy.template import write_starter_policy
 
     file = write_starter_policy(args.file)
     print(f"wrote {file}: edit it, then check it with `gate policy validate {file}`")
@@ -223,7 +223,7 @@ def _run_policy_init(args: argparse.Namespace) -> int:
 
 
 def _run_policy_validate(args: argparse.Namespace) -> int:
-    from gate.policy import load_policy, today_utc
+    from gate.policy.models import load_policy, today_utc
 
     policy = load_policy(args.file)
     limits = policy.limits
@@ -241,21 +241,21 @@ def _run_policy_validate(args: argparse.Namespace) -> int:
 
 
 def _run_policy_schema(args: argparse.Namespace) -> int:
-    from gate.schemas import policy_schema, schema_text
+    from gate.judge.document import policy_schema, schema_text
 
     sys.stdout.write(schema_text(policy_schema()))
     return 0
 
 
 def _run_verdict_schema(args: argparse.Namespace) -> int:
-    from gate.schemas import schema_text, verdict_schema
+    from gate.judge.document import schema_text, verdict_schema
 
     sys.stdout.write(schema_text(verdict_schema()))
     return 0
 
 
 def _run_demo(args: argparse.Namespace) -> int:
-    from gate.demo import run_demo
+    from gate.cli.demo import run_demo
 
     return run_demo(Path(args.out))
 
@@ -302,8 +302,8 @@ def _run_suggest(args: argparse.Namespace) -> int:
 
     from gate.api import check
     from gate.artefacts.files import write_atomic
-    from gate.policy import load_policy, packaged_policy_path
-    from gate.suggest import (
+    from gate.policy.models import load_policy, packaged_policy_path
+    from gate.remedies.search import (
         policy_with_exclusions,
         read_preference,
         suggest,
@@ -339,8 +339,8 @@ def _run_suggest(args: argparse.Namespace) -> int:
 
 def _run_check_files(args: argparse.Namespace) -> int:
     from gate.api import check
-    from gate.outputs import write_check_outputs
-    from gate.policy import load_policy
+    from gate.artefacts.outputs import write_check_outputs
+    from gate.policy.models import load_policy
 
     policy = load_policy(args.policy)  # a bad policy is one error for every file: exit 2 now
     worst = 0

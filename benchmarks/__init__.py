@@ -1,0 +1,1 @@
+"""Benchmarks of collinearity-gate against the floor and the peer (not part of the package)."""

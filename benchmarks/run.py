@@ -1,0 +1,426 @@
+"""Benchmark: `gate check` against the floor, the per-column regression loop, and Dask.
+
+Run ``python -m gate.bench`` (several minutes; writes ~5 GB of seeded data into a temporary
+folder and deletes it) or ``python -m gate.bench --quick`` (tiny sizes, seconds; a smoke run).
+``--json FILE`` writes the same figures as JSON. This is a script, not a test: nothing here is
+asserted, and timings depend on the machine, which is described in the output.
+
+Measured side by side in the same run, each as a whole process (``subprocess``; wall time
+from ``time.perf_counter``, peak RSS from ``os.wait4``'s rusage), alternating the two
+commands ``--repeat`` times and keeping the fastest of each (the least disturbed by other
+load on the machine):
+
+1. 1,000,000 x 100 Parquet: ``gate check`` / floor. The floor is a minimal script: read the
+   file with pyarrow, copy the columns into one numpy array, one centred X'X. Target <= 2.0.
+2. 200,000 x 100: speed-up of the gate over statsmodels' ``variance_inflation_factor`` looped
+   over all columns (with a constant). The loop is timed on a sample of columns and
+   extrapolated to all of them (said in the output). Target >= 1,000x.
+3. 10,000,000 x 50 Parquet with pyarrow's default 1Mi-row row groups, streamed: peak RSS of
+   ``gate check`` (target <= 600 MB), and wall time / floor.
+4. 20,000 x 2,000 Parquet: ``gate check`` / floor. Target <= 3.0.
+5. Dask, 2 local worker processes, warm cluster (start-up timed separately): ``gate check
+   --engine dask --scheduler ADDRESS`` / ``gate check`` on the 1M x 100 file. Target <= 1.5.
+   The two verdicts' diagnostics are compared too (max relative difference).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import subprocess
+import sys
+import tempfile
+import time
+from collections.abc import Sequence
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+SEED = 20_260_501
+
+FLOOR_SCRIPT = '''\
+import sys
+import numpy as np
+import pyarrow.parquet as pq
+
+table = pq.read_table(sys.argv[1])
+x = np.empty((table.num_columns, table.num_rows)).T  # column-major: contiguous column copies
+for j, column in enumerate(table.columns):
+    start = 0
+    for chunk in column.chunks:  # float64, no nulls: the values buffer as it is
+        n = len(chunk)
+        x[start:start + n, j] = np.frombuffer(chunk.buffers()[1], dtype=np.float64,
+                                              count=chunk.offset + n)[chunk.offset:]
+        start += n
+del table
+x -= x.mean(axis=0)
+gram = x.T @ x
+print(gram.shape[0], float(gram[0, 0]))
+'''
+
+
+@dataclass
+class Sizes:
+    main: tuple[int, int]
+    main_row_group: int
+    peer: tuple[int, int]
+    peer_sample: int
+    stream: tuple[int, int]
+    wide: tuple[int, int]
+
+
+FULL = Sizes(main=(1_000_000, 100), main_row_group=131_072, peer=(200_000, 100), peer_sample=5,
+             stream=(10_000_000, 50), wide=(20_000, 2_000))
+QUICK = Sizes(main=(20_000, 10), main_row_group=4_096, peer=(5_000, 10), peer_sample=3,
+              stream=(60_000, 5), wide=(500, 60))
+
+
+@dataclass
+class Run:
+    seconds: float
+    peak_rss_mb: float
+    returncode: int
+
+
+@dataclass
+class Pair:
+    """Fastest of ``repeat`` alternating runs of each command."""
+
+    gate: list[Run] = field(default_factory=list)
+    floor: list[Run] = field(default_factory=list)
+
+    @property
+    def gate_seconds(self) -> float:
+        return min(r.seconds for r in self.gate)
+
+    @property
+    def floor_seconds(self) -> float:
+        return min(r.seconds for r in self.floor)
+
+    @property
+    def ratio(self) -> float:
+        return self.gate_seconds / self.floor_seconds
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="python -m gate.bench", description=__doc__,
+                                     formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--quick", action="store_true", help="tiny sizes (a smoke run)")
+    parser.add_argument("--json", metavar="FILE", type=Path, help="also write figures as JSON")
+    parser.add_argument("--repeat", type=int, default=None,
+                        help="alternating runs per command (default 2, quick 1)")
+    parser.add_argument("--keep", metavar="DIR", type=Path,
+                        help="generate the data here and keep it (reused when present)")
+    parser.add_argument("--skip", metavar="NAME", action="append", default=[],
+                        choices=("main", "peer", "stream", "wide", "dask"),
+                        help="leave out one measurement (repeatable)")
+    args = parser.parse_args(argv)
+    sizes = QUICK if args.quick else FULL
+    repeat = args.repeat or (1 if args.quick else 2)
+
+    report: dict[str, Any] = {"mode": "quick" if args.quick else "full", "repeat": repeat,
+                              "machine": machine(), "results": {}}
+    _print_machine(report["machine"])
+    with tempfile.TemporaryDirectory(prefix="gate-bench-") as scratch:
+        folder = args.keep or Path(scratch)
+        folder.mkdir(parents=True, exist_ok=True)
+        floor = folder / "floor.py"
+        floor.write_text(FLOOR_SCRIPT)
+        results = report["results"]
+        main_file = folder / f"main_{sizes.main[0]}x{sizes.main[1]}.parquet"
+        if "main" not in args.skip or "dask" not in args.skip:
+            write_parquet(main_file, *sizes.main, row_group=sizes.main_row_group)
+        if "main" not in args.skip:
+            results["main"] = bench_versus_floor(
+                "main", main_file, floor, folder, repeat, target=2.0, sizes=sizes.main,
+                note=f"row groups of {sizes.main_row_group:,} rows")
+        if "peer" not in args.skip:
+            results["peer"] = bench_peer(folder, sizes, repeat)
+        if "stream" not in args.skip:
+            stream_file = folder / f"stream_{sizes.stream[0]}x{sizes.stream[1]}.parquet"
+            write_parquet(stream_file, *sizes.stream, row_group=None)
+            results["stream"] = bench_versus_floor(
+                "stream", stream_file, floor, folder, repeat, target=None, sizes=sizes.stream,
+                note="pyarrow's default row groups (1Mi rows)", rss_target_mb=600.0)
+        if "wide" not in args.skip:
+            wide_file = folder / f"wide_{sizes.wide[0]}x{sizes.wide[1]}.parquet"
+            write_parquet(wide_file, *sizes.wide, row_group=None)
+            results["wide"] = bench_versus_floor(
+                "wide", wide_file, floor, folder, repeat, target=3.0, sizes=sizes.wide)
+        if "dask" not in args.skip:
+            results["dask"] = bench_dask(main_file, folder, repeat, sizes)
+    report["load_average_end"] = list(os.getloadavg())
+    _print_table(report)
+    if args.json:
+        args.json.write_text(json.dumps(report, indent=2) + "\n")
+        print(f"wrote {args.json}")
+    return 0
+
+
+# --- data ----------------------------------------------------------------------------------------
+
+def write_parquet(path: Path, rows: int, columns: int, *, row_group: int | None) -> None:
+    """Seeded invented fleet-telemetry features: a few latent drivers (load, speed, ambient
+    temperature...) mixed into every column plus noise, so columns correlate as real sensor
+    features do, without exact dependencies. Written in slices to bound memory."""
+    if path.exists():
+        return
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    rng = np.random.default_rng(SEED + rows + columns)
+    latent = 6
+    mixing = rng.standard_normal((latent, columns)) * 0.35
+    names = [f"sensor_{j:04d}" for j in range(columns)]
+    schema = pa.schema([(name, pa.float64()) for name in names])
+    step = row_group or (1 << 20)  # one slice = one row group (pyarrow's default: 1Mi rows)
+    with pq.ParquetWriter(path, schema) as writer:
+        for start in range(0, rows, step):
+            n = min(step, rows - start)
+            block = rng.standard_normal((n, latent)) @ mixing + rng.standard_normal((n, columns))
+            table = pa.table({name: block[:, j] for j, name in enumerate(names)}, schema=schema)
+            writer.write_table(table, row_group_size=step)
+
+
+# --- measurements ---------------------------------------------------------------------------------
+
+def run(command: Sequence[str]) -> Run:
+    """Wall time and peak RSS of one whole process.
+
+    Peak RSS comes from GNU time (``/usr/bin/time -f %M``) when present: a child forked from
+    this (large) process inherits its RSS high-water mark in ``ru_maxrss``, so ``wait4`` here
+    would over-report small children; GNU time is a small parent. Otherwise ``wait4``.
+    """
+    timer = Path("/usr/bin/time")
+    with tempfile.NamedTemporaryFile(prefix="gate-bench-rss-", suffix=".txt") as rss_file:
+        prefix = [str(timer), "-f", "%M", "-o", rss_file.name] if timer.exists() else []
+        start = time.perf_counter()
+        process = subprocess.Popen([*prefix, *command], stdout=subprocess.DEVNULL,
+                                   stderr=subprocess.PIPE)
+        _, status, usage = os.wait4(process.pid, 0)
+        seconds = time.perf_counter() - start
+        returncode = os.waitstatus_to_exitcode(status)
+        stderr = process.stderr.read().decode(errors="replace") if process.stderr else ""
+        if process.stderr:
+            process.stderr.close()
+        process.returncode = returncode
+        peak_kb = float(usage.ru_maxrss)
+        if prefix:
+            text = Path(rss_file.name).read_text().split()
+            peak_kb = float(text[-1]) if text and text[-1].isdigit() else peak_kb
+    if returncode not in (0, 1):
+        raise RuntimeError(f"{' '.join(command)} exited {returncode}: {stderr[-2000:]}")
+    return Run(seconds, peak_kb / 1024.0, returncode)
+
+
+def gate_command(table: Path, out: Path, *extra: str) -> list[str]:
+    return [sys.executable, "-m", "gate", "check", str(table), "--out", str(out), "--quiet",
+            *extra]
+
+
+def bench_versus_floor(name: str, table: Path, floor: Path, folder: Path, repeat: int, *,
+                       target: float | None, sizes: tuple[int, int], note: str = "",
+                       rss_target_mb: float | None = None) -> dict[str, Any]:
+    pair = Pair()
+    _progress(f"{name}: {sizes[0]:,} x {sizes[1]:,} ({note or 'default layout'})")
+    for _ in range(repeat):
+        pair.floor.append(run([sys.executable, str(floor), str(table)]))
+        pair.gate.append(run(gate_command(table, folder / f"out-{name}")))
+    result: dict[str, Any] = {
+        "rows": sizes[0], "columns": sizes[1], "file_mb": table.stat().st_size / 1e6,
+        "note": note, "gate_seconds": pair.gate_seconds, "floor_seconds": pair.floor_seconds,
+        "ratio": pair.ratio, "target_ratio": target,
+        "gate_peak_rss_mb": min(r.peak_rss_mb for r in pair.gate),
+        "floor_peak_rss_mb": min(r.peak_rss_mb for r in pair.floor),
+        "runs": {"gate": [asdict(r) for r in pair.gate], "floor": [asdict(r) for r in pair.floor]},
+        "load_average": list(os.getloadavg()),
+    }
+    if rss_target_mb is not None:
+        result["target_peak_rss_mb"] = rss_target_mb
+    return result
+
+
+def bench_peer(folder: Path, sizes: Sizes, repeat: int) -> dict[str, Any]:
+    """The gate vs statsmodels' variance_inflation_factor looped over every column."""
+    import numpy as np
+    import pyarrow.parquet as pq
+
+    rows, columns = sizes.peer
+    table_path = folder / f"peer_{rows}x{columns}.parquet"
+    write_parquet(table_path, rows, columns, row_group=None)
+    _progress(f"peer: {rows:,} x {columns:,}, statsmodels on {sizes.peer_sample} columns")
+    from statsmodels.stats.outliers_influence import variance_inflation_factor
+
+    import gate
+
+    table = pq.read_table(table_path)
+    values = np.column_stack([np.asarray(c.combine_chunks()) for c in table.columns])
+    exog = np.column_stack([np.ones(rows), values])  # the constant, as statsmodels' docs advise
+    sample = np.linspace(1, columns, sizes.peer_sample).round().astype(int)
+    loop_times = []
+    peer_vif = {}
+    for j in sample:
+        start = time.perf_counter()
+        peer_vif[int(j)] = float(variance_inflation_factor(exog, int(j)))
+        loop_times.append(time.perf_counter() - start)
+    per_column = float(np.mean(loop_times))
+    loop_seconds = per_column * columns
+
+    in_process = []
+    for _ in range(repeat):
+        start = time.perf_counter()
+        verdict = gate.check(table)
+        in_process.append(time.perf_counter() - start)
+    process = min((run(gate_command(table_path, folder / "out-peer")) for _ in range(repeat)),
+                  key=lambda r: r.seconds)
+    vif = verdict.diagnostics.vif
+    agreement = max(abs(vif[j - 1] / peer_vif[j] - 1.0) for j in peer_vif)
+    return {
+        "rows": rows, "columns": columns, "sampled_columns": len(sample),
+        "statsmodels_seconds_per_column": per_column,
+        "statsmodels_loop_seconds_extrapolated": loop_seconds,
+        "gate_in_process_seconds": min(in_process),
+        "gate_process_seconds": process.seconds,
+        "speedup_in_process": loop_seconds / min(in_process),
+        "speedup_whole_process": loop_seconds / process.seconds,
+        "target_speedup": 1000.0,
+        "max_relative_vif_difference_on_sample": agreement,
+        "load_average": list(os.getloadavg()),
+    }
+
+
+def bench_dask(table: Path, folder: Path, repeat: int, sizes: Sizes) -> dict[str, Any]:
+    from distributed import Client, LocalCluster
+
+    _progress("dask: starting a local cluster (2 worker processes, 1 thread each)")
+    start = time.perf_counter()
+    cluster = LocalCluster(  # type: ignore[no-untyped-call]
+        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None)
+    client = Client(cluster)  # type: ignore[no-untyped-call]
+    client.wait_for_workers(2)
+    startup = time.perf_counter() - start
+    try:
+        local_out, dask_out = folder / "out-dask-local", folder / "out-dask"
+        dask_extra = ("--engine", "dask", "--scheduler", cluster.scheduler_address)
+        run(gate_command(table, dask_out, *dask_extra))  # warm the workers' imports
+        local_runs, dask_runs = [], []
+        for _ in range(repeat):
+            local_runs.append(run(gate_command(table, local_out)))
+            dask_runs.append(run(gate_command(table, dask_out, *dask_extra)))
+    finally:
+        client.close()  # type: ignore[no-untyped-call]
+        cluster.close()
+    difference = _max_relative_difference(local_out / "verdict.json", dask_out / "verdict.json")
+    local_seconds = min(r.seconds for r in local_runs)
+    dask_seconds = min(r.seconds for r in dask_runs)
+    return {
+        "rows": sizes.main[0], "columns": sizes.main[1], "workers": 2,
+        "cluster_startup_seconds": startup, "local_seconds": local_seconds,
+        "dask_seconds": dask_seconds, "ratio": dask_seconds / local_seconds,
+        "target_ratio": 1.5, "max_relative_difference": difference,
+        "load_average": list(os.getloadavg()),
+    }
+
+
+def _max_relative_difference(a: Path, b: Path) -> float:
+    left, right = (json.loads(p.read_text())["diagnostics"] for p in (a, b))
+    worst = 0.0
+    pairs = [(left["vif"][k], right["vif"][k]) for k in left["vif"]]
+    pairs += list(zip(left["condition_indices"], right["condition_indices"]))
+    for x, y in pairs:
+        if x is not None and y is not None and x != 0:
+            worst = max(worst, abs(x - y) / abs(x))
+    return worst
+
+
+# --- machine and printing ---------------------------------------------------------------------
+
+def machine() -> dict[str, Any]:
+    import numpy as np
+    import pyarrow as pa
+    from threadpoolctl import threadpool_info
+
+    del np
+    blas = [{k: info.get(k) for k in ("internal_api", "version", "architecture", "num_threads",
+                                      "threading_layer")}
+            for info in threadpool_info() if info.get("user_api") == "blas"]
+    return {
+        "cores": os.cpu_count(), "platform": platform.platform(),
+        "processor": platform.processor() or platform.machine(),
+        "python": platform.python_version(), "pyarrow": pa.__version__,
+        "numpy": __import__("numpy").__version__, "blas": blas,
+        "openblas_env": {k: v for k, v in os.environ.items() if k.startswith("OPENBLAS")},
+        "memory_gb": _memory_gb(), "load_average_start": list(os.getloadavg()),
+    }
+
+
+def _memory_gb() -> float | None:
+    try:
+        pages = os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (ValueError, OSError):
+        return None
+    return round(pages / 2**30, 1)
+
+
+def _progress(text: str) -> None:
+    print(f"... {text}", file=sys.stderr, flush=True)
+
+
+def _print_machine(info: dict[str, Any]) -> None:
+    blas = ", ".join(f"{b['internal_api']} {b['version']} kernel {b['architecture']} "
+                     f"{b['num_threads']} threads" for b in info["blas"]) or "unknown"
+    print(f"machine: {info['cores']} cores, {info['memory_gb']} GiB, {info['platform']}")
+    print(f"  python {info['python']}, numpy {info['numpy']}, pyarrow {info['pyarrow']}")
+    print(f"  BLAS: {blas}; env {info['openblas_env'] or '-'}")
+    print(f"  load average at start: {', '.join(f'{v:.2f}' for v in info['load_average_start'])}")
+
+
+def _print_table(report: dict[str, Any]) -> None:
+    r = report["results"]
+    lines = [f"\nbenchmark ({report['mode']}; fastest of {report['repeat']} alternating runs)"]
+
+    def verdict(ok: bool) -> str:
+        return "meets target" if ok else "MISSES target"
+
+    for key, title in (("main", "1"), ("stream", "3"), ("wide", "4")):
+        if key not in r:
+            continue
+        x = r[key]
+        line = (f"({title}) {x['rows']:,} x {x['columns']:,}: gate {x['gate_seconds']:.2f} s, "
+                f"floor {x['floor_seconds']:.2f} s, ratio {x['ratio']:.2f}")
+        if x.get("target_ratio"):
+            line += f" (target <= {x['target_ratio']}: {verdict(x['ratio'] <= x['target_ratio'])})"
+        line += f"; peak RSS gate {x['gate_peak_rss_mb']:.0f} MB, floor {x['floor_peak_rss_mb']:.0f} MB"
+        if x.get("target_peak_rss_mb"):
+            ok = x["gate_peak_rss_mb"] <= x["target_peak_rss_mb"]
+            line += f" (target <= {x['target_peak_rss_mb']:.0f} MB: {verdict(ok)})"
+        lines.append(line)
+    if "peer" in r:
+        x = r["peer"]
+        lines.append(
+            f"(2) {x['rows']:,} x {x['columns']:,}: statsmodels variance_inflation_factor "
+            f"{x['statsmodels_seconds_per_column']:.2f} s/column, timed on "
+            f"{x['sampled_columns']} columns and extrapolated to {x['columns']}: "
+            f"{x['statsmodels_loop_seconds_extrapolated']:.1f} s; gate.check in process "
+            f"{x['gate_in_process_seconds']:.3f} s -> {x['speedup_in_process']:,.0f}x "
+            f"(target >= 1,000x: {verdict(x['speedup_in_process'] >= 1000)}); whole `gate "
+            f"check` process {x['gate_process_seconds']:.2f} s -> "
+            f"{x['speedup_whole_process']:,.0f}x; VIFs agree to "
+            f"{x['max_relative_vif_difference_on_sample']:.1e}")
+    if "dask" in r:
+        x = r["dask"]
+        lines.append(
+            f"(5) dask, 2 local workers, {x['rows']:,} x {x['columns']:,}: cluster start-up "
+            f"{x['cluster_startup_seconds']:.1f} s (separate); warm: dask "
+            f"{x['dask_seconds']:.2f} s vs local {x['local_seconds']:.2f} s, ratio "
+            f"{x['ratio']:.2f} (target <= 1.5: {verdict(x['ratio'] <= 1.5)}); diagnostics "
+            f"agree to {x['max_relative_difference']:.1e}")
+    lines.append(f"load average at end: {', '.join(f'{v:.2f}' for v in report['load_average_end'])}")
+    print("\n".join(lines))
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,1 @@
+"""The command line: main(argv) -> int, one module per command group."""

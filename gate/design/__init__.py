@@ -1,0 +1,1 @@
+"""Stage 2, the design matrix: policy columns -> design plan, encoded blocks, finished design."""

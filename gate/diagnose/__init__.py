@@ -1,0 +1,1 @@
+"""Stage 4, diagnostics: statistics -> frozen Diagnostics (arrays only), dependencies."""

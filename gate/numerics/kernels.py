@@ -1,0 +1,150 @@
+"""The only copy of each numerical kernel; arrays in, arrays out, no gate imports.
+
+Every kernel names its formula and reference. Callers: the exact-pass routing
+(``gate.stats.routing``), the diagnostics (``gate.diagnose.diagnostics``), and suggest's
+evaluation of candidate sets (``gate.remedies.search``).
+"""
+
+from __future__ import annotations
+
+from typing import Literal
+
+import numpy as np
+import scipy.linalg as sla
+from numpy.typing import NDArray
+
+FloatArray = NDArray[np.float64]
+IntArray = NDArray[np.intp]
+BoolArray = NDArray[np.bool_]
+#: Belsley-Kuh-Welsch scaling: unit-length columns of [1, X], or centred and scaled X.
+Scaling = Literal["unit_length", "standardized"]
+
+EPS = float(np.finfo(np.float64).eps)
+#: Intercept position in the condition-index column lists.
+INTERCEPT = -1
+
+
+def correlation_block(comoment: FloatArray, columns: IntArray, scale: FloatArray) -> FloatArray:
+    block = comoment[np.ix_(columns, columns)] / np.outer(scale, scale)
+    np.clip(block, -1.0, 1.0, out=block)  # |r| <= 1; rounding can land a duplicate at 1 + eps
+    np.fill_diagonal(block, 1.0)
+    return block
+
+
+def certified_cholesky(corr: FloatArray, resolution: float
+                       ) -> tuple[FloatArray | None, FloatArray | None]:
+    """Upper Cholesky factor of corr and its inverse if every singular-value ratio of the
+    standardised design is certainly at least ``resolution``, else (None, None).
+
+    With A = Rt^-1: 1 / lambda_min = ||A||_2^2 <= min(||A||_F^2, ||A||_1 ||A||_inf), where
+    ||A||_F^2 = trace(corr^-1) = sum(VIF); and lambda_max <= min(p, ||corr||_inf) (Golub & Van
+    Loan, "Matrix Computations", 4th ed., 2.3.2 and 8.1). These O(p^2) bounds certify the
+    singular-value ratio without an eigen-decomposition in all but borderline cases; only then
+    do the eigenvalues decide.
+    """
+    try:
+        rt: FloatArray = np.asarray(sla.cholesky(corr, lower=False, check_finite=False))
+    except np.linalg.LinAlgError:
+        return None, None
+    inverse, info = sla.lapack.dtrtri(rt, lower=0)
+    inverse = np.asarray(inverse)
+    if info == 0 and np.all(np.isfinite(inverse)):
+        vif_sum = float(np.einsum("ij,ij->", inverse, inverse))
+        if vif_sum * corr.shape[0] * resolution**2 < 1.0:
+            return rt, inverse
+        absolute = np.abs(inverse)
+        inverse_norm_sq = min(vif_sum, float(absolute.sum(axis=0).max())
+                              * float(absolute.sum(axis=1).max()))
+        largest = min(float(corr.shape[0]), float(np.abs(corr).sum(axis=1).max()))
+        if inverse_norm_sq * largest * resolution**2 < 1.0:
+            return rt, inverse
+    eigenvalues = np.linalg.eigvalsh(corr)
+    if eigenvalues[0] >= (resolution**2) * eigenvalues[-1]:
+        return rt, (inverse if info == 0 else None)
+    return None, None
+
+
+def triangular_inverse(r: FloatArray) -> FloatArray:
+    if r.size == 0:
+        return np.zeros((0, 0))
+    inverse, info = sla.lapack.dtrtri(r, lower=0)
+    if info != 0:
+        raise np.linalg.LinAlgError("singular triangular factor after rank reduction")
+    return np.asarray(inverse)
+
+
+def upper_times_transpose(upper: FloatArray) -> FloatArray:
+    """U U' for upper-triangular U (LAPACK dlauum: a third of the flops of a general product),
+    symmetric by construction."""
+    if upper.size == 0:
+        return np.zeros((0, 0))
+    product, info = sla.lapack.dlauum(upper, lower=0)
+    if info != 0:
+        raise np.linalg.LinAlgError(f"dlauum failed (info={info})")
+    top = np.triu(product)
+    return np.asarray(top + np.triu(top, 1).T)
+
+
+def belsley_kuh_welsch(r: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Condition indices mu_max / mu_k (ascending) and variance-decomposition proportions
+    ``proportions[k, j]`` (each column sums to 1) from the SVD of the scaled factor ``r``
+    (Belsley, Kuh & Welsch 1980, "Regression Diagnostics", ch. 3):
+    phi_jk = v_jk^2 / mu_k^2, pi_kj = phi_jk / sum_k phi_jk."""
+    if r.size == 0:
+        return np.ones(0), np.zeros((0, 0))
+    _, mu, vt = sla.svd(r, full_matrices=False, check_finite=False, lapack_driver="gesdd")
+    indices = mu[0] / mu
+    phi = (vt.T / mu) ** 2  # phi[j, k] = v_jk^2 / mu_k^2
+    return np.asarray(indices), np.asarray((phi / phi.sum(axis=1, keepdims=True)).T)
+
+
+def squared_row_norms(matrix: FloatArray) -> FloatArray:
+    """VIF_j = squared norm of row j of inv(Rt) = [corr^-1]_jj (numerics.md)."""
+    return np.asarray(np.einsum("ij,ij->i", matrix, matrix))
+
+
+def gvif(correlation_block_gg: FloatArray, inverse_block_gg: FloatArray) -> float:
+    """Generalised VIF of a group G (Fox & Monette 1992, JASA 87:178-183):
+    det(corr_GG) * det([corr^-1]_GG) (Schur complement form); NaN when undefined."""
+    sign_c, log_c = np.linalg.slogdet(correlation_block_gg)
+    sign_p, log_p = np.linalg.slogdet(inverse_block_gg)
+    return float(np.exp(log_c + log_p)) if sign_c > 0 and sign_p > 0 else float("nan")
+
+
+def scaled_design_factor(weight_sum: float, means: FloatArray, kept: IntArray,
+                         r_kept: FloatArray, scales: FloatArray, scaling: Scaling
+                         ) -> tuple[FloatArray, tuple[int, ...]]:
+    """The factor whose singular values give the Belsley-Kuh-Welsch condition indices.
+
+    ``r_kept`` is the upper factor of the correlation matrix of the ``kept`` columns (any subset
+    of the design, e.g. a candidate set in ``gate.remedies.search``); ``scales`` are centred column
+    norms and ``means`` the (weighted) means over all design columns.
+
+    unit_length: [[sqrt(W), sqrt(W) m'], [0, R11]] with R11 = r_kept * s, each column scaled to
+    unit length (Belsley, Kuh & Welsch 1980, ch. 3); standardized: ``r_kept`` itself.
+    Returns the factor and the design column of each of its columns (INTERCEPT = -1).
+    """
+    if scaling == "standardized":
+        return r_kept, tuple(int(k) for k in kept)
+    root_w = np.sqrt(weight_sum)
+    k = kept.size
+    r = np.zeros((k + 1, k + 1))
+    r[0, 0] = root_w
+    r[0, 1:] = root_w * means[kept]
+    r[1:, 1:] = r_kept * scales[kept]
+    r = r / np.linalg.norm(r, axis=0)
+    return r, (INTERCEPT, *(int(c) for c in kept))
+
+
+def condition_indices(weight_sum: float, means: FloatArray, kept: IntArray, r_kept: FloatArray,
+                      scales: FloatArray, scaling: Scaling) -> FloatArray:
+    """Condition indices mu_max / mu_k (ascending) of the design restricted to ``kept``.
+
+    Singular values only (no proportions), for searches that evaluate many column subsets.
+    Belsley, Kuh & Welsch (1980), "Regression Diagnostics", ch. 3.
+    """
+    r, _ = scaled_design_factor(weight_sum, means, kept, r_kept, scales, scaling)
+    if r.size == 0:
+        return np.ones(0)
+    mu = sla.svd(r, compute_uv=False, check_finite=False, lapack_driver="gesdd")
+    return np.asarray(mu[0] / mu)

@@ -1,0 +1,1 @@
+"""Stage 0, the policy: frozen models of the YAML policy, the only YAML reader, the starter policy."""

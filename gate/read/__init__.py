@@ -1,0 +1,1 @@
+"""Stage 1, reading tables: file, folder and frame sources yielding Arrow chunks; file provenance."""
