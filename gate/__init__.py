@@ -2,7 +2,7 @@
 
 from gate.api import check
 from gate.errors import DesignError, GateError, GateFailed, OutputError, PolicyError, TableError
-from gate.judge.rules import Finding
+from gate.judge.findings import Finding
 from gate.judge.verdict import Verdict
 from gate.policy.models import Policy, load_policy, parse_policy
 

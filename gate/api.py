@@ -18,7 +18,8 @@ import numpy as np
 from gate.design.plan import Design, DesignPlan, RowCounts, finish_design, plan_design
 from gate.diagnose.diagnostics import Diagnostics, compute_diagnostics
 from gate.errors import DesignError, TableError
-from gate.judge.rules import Finding, judge, status_of
+from gate.judge.findings import Finding, status_of
+from gate.judge.rules import judge
 from gate.judge.verdict import TableInfo, Verdict, tool_version
 from gate.policy.models import Policy, load_policy, today_utc
 from gate.read.sources import DaskFrameSource, TableSource, open_table
@@ -75,7 +76,8 @@ def _with_structural(verdict: Verdict, source: TableSource, plan: DesignPlan) ->
     names = verdict.design.features
     notes = tuple(Finding("structural", "info", (names[t.feature],
                                                  *(names[k] for k in dict.fromkeys(t.parents))),
-                          t.correlation, None, t.describe(names)) for t in terms)
+                          t.correlation, None, t.describe(names), subject="structural")
+                  for t in terms)
     return replace(verdict, structural=terms, findings=verdict.findings + notes)
 
 

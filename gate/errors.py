@@ -7,16 +7,29 @@
     └── OutputError           an artefact cannot be written (folder not writable, disk full)
     GateFailed                raised by Verdict.raise_for_status(); carries the verdict
 
+ExitCode is the one set of exit codes every command returns.
+
 PolicyError, TableError and DesignError are also ValueErrors, so callers that
 already catch ValueError keep working. Messages are one line: what, where, and the fix.
 """
 
 from __future__ import annotations
 
+from enum import IntEnum
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
     from gate.judge.verdict import Verdict
+
+
+class ExitCode(IntEnum):
+    """Exit codes of every `gate` command."""
+
+    OK = 0  # pass or warn; or the command did what it was asked
+    FAILED = 1  # the gate failed (or: NEW is worse, the chain is broken, no drop set passes)
+    BAD_INPUT = 2  # unusable input: one line on stderr, no traceback
+    INTERNAL = 3  # a bug: the traceback is printed
+    INTERRUPTED = 130  # Ctrl-C (128 + SIGINT, the shell's convention)
 
 
 class GateError(Exception):
@@ -42,9 +55,6 @@ class OutputError(GateError, OSError):
 class GateFailed(Exception):
     """The gate judged the table as failing; ``verdict`` holds the details."""
 
-    def __init__(self, verdict: Verdict) -> None:
+    def __init__(self, verdict: Verdict, message: str) -> None:
         self.verdict = verdict
-        worst = [f for f in verdict.findings if f.level == "fail" and not f.waived]
-        detail = "; ".join(f.message for f in worst[:3])
-        more = f" (+{len(worst) - 3} more)" if len(worst) > 3 else ""
-        super().__init__(f"collinearity gate failed: {detail}{more}")
+        super().__init__(message)

@@ -27,6 +27,7 @@ from sklearn.utils.validation import _check_feature_names_in, check_is_fitted, v
 
 from gate.api import check
 from gate.errors import GateFailed
+from gate.judge.findings import unwaived
 from gate.judge.verdict import Verdict
 from gate.policy.models import Policy
 
@@ -68,12 +69,14 @@ class CollinearityGate(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         verdict = check(self._frame(X), self.policy, label=self.label)
         self.verdict_: Verdict = verdict
         if verdict.status == "fail":
-            failure = GateFailed(verdict)
-            if self.on_fail == "raise":
-                raise failure
-            warnings.warn(CollinearityWarning(str(failure)), stacklevel=2)
+            try:
+                verdict.raise_for_status()
+            except GateFailed as failure:
+                if self.on_fail == "raise":
+                    raise
+                warnings.warn(CollinearityWarning(str(failure)), stacklevel=2)
         elif verdict.status == "warn" and self.on_warn == "warn":
-            messages = [f.message for f in verdict.findings if f.level == "warn" and not f.waived]
+            messages = [f.message for f in unwaived(verdict.findings, "warn")]
             warnings.warn(CollinearityWarning(
                 f"collinearity gate warns: {'; '.join(messages[:3])}"), stacklevel=2)
         return self

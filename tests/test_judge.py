@@ -11,7 +11,7 @@ import pandas as pd
 import pytest
 
 import gate
-from gate.judge.rules import Finding, status_of
+from gate.judge.findings import Finding, status_of
 from gate.judge.verdict import Verdict
 from gate.policy.models import Policy
 

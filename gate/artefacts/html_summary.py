@@ -26,7 +26,8 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from gate.artefacts.files import write_atomic
-from gate.judge.rules import INTERCEPT_NAME, Finding, describe_dependency, effective_rows_label
+from gate.judge.findings import LEVELS, Finding, counts_text, unwaived
+from gate.judge.rules import INTERCEPT_NAME, describe_dependency, effective_rows_label
 from gate.numerics.kernels import INTERCEPT
 
 if TYPE_CHECKING:
@@ -169,11 +170,7 @@ def _page(verdict: Verdict, sections: Sequence[_Section]) -> str:
 
 
 def _status_reason(verdict: Verdict) -> str:
-    active = [f for f in verdict.findings if not f.waived]
-    fails = sum(1 for f in active if f.level == "fail")
-    warns = sum(1 for f in active if f.level == "warn")
-    waived = sum(1 for f in verdict.findings if f.waived)
-    return f"{fails} failing, {warns} warning, {waived} waived finding{'s' if waived != 1 else ''}"
+    return f"findings: {counts_text(verdict.findings)}"
 
 
 # --- great-tables helpers --------------------------------------------------------------------
@@ -302,9 +299,9 @@ def _verdict_section(verdict: Verdict) -> str:
 
 
 def _findings_section(verdict: Verdict) -> str:
-    order = {"fail": 0, "warn": 1, "info": 3}
+    order = {level: rank for rank, level in enumerate(LEVELS)}  # fail, warn, info
     findings = sorted(verdict.findings,
-                      key=lambda f: (2 if f.waived else order.get(f.level, 4), f.rule))
+                      key=lambda f: (len(LEVELS) if f.waived else order[f.level], f.rule))
     waivers = verdict.policy.waivers
     parts: list[str] = []
     if not findings:
@@ -363,12 +360,12 @@ def _findings_section(verdict: Verdict) -> str:
 
 def _finding_value(f: Finding) -> str:
     if f.value is not None:
-        return _signed(f.value) if f.rule == "pairwise_correlation" else _num(f.value, 2)
-    if f.rule in ("vif", "condition_number"):
-        return "\u221e" if "infinite" in f.message else "undefined"
-    if f.rule == "rank_deficiency":
+        return _signed(f.value) if f.subject == "pair" else _num(f.value, 2)
+    if f.subject == "dependency":
         return "exact"
-    return "\u2014"
+    if f.value_kind == "infinite":
+        return "\u221e"
+    return "undefined" if f.rule in ("vif", "condition_number") else "\u2014"
 
 
 def _finding_limit(f: Finding) -> str:
@@ -676,8 +673,7 @@ def _segments_section(verdict: Verdict) -> str:
             continue
         finite = [float(v) for v in inner.diagnostics.vif if math.isfinite(float(v))]
         worst = max(inner.diagnostics.vif.tolist(), default=1.0)
-        active = sorted((f for f in inner.findings if not f.waived and f.level in ("fail", "warn")),
-                        key=lambda f: f.level != "fail")
+        active = unwaived(inner.findings, "fail") + unwaived(inner.findings, "warn")
         rows.append({
             "segment": segment.label, "rows": f"{segment.rows_used:,}",
             "status": inner.status,

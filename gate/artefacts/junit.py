@@ -26,7 +26,7 @@ from collections import Counter
 from pathlib import Path
 
 from gate.artefacts.files import write_atomic
-from gate.judge.rules import Finding
+from gate.judge.findings import Finding
 from gate.judge.verdict import Verdict
 from gate.policy.models import RULES
 
@@ -148,12 +148,9 @@ def _case(rule: str, subject: str, names: Counter[str]) -> ET.Element:
 
 
 def _subject(finding: Finding) -> str:
-    if finding.features:
-        return ", ".join(finding.features)
-    if finding.rule == "segment" and finding.message.startswith("segment "):
-        # segment findings name their segment in the message ("segment region=north (...)")
-        return finding.message[len("segment "):].split(" (")[0].split(":")[0]
-    return "design"
+    if finding.subject == "segment" and finding.segment is not None:
+        return finding.segment
+    return ", ".join(finding.features) or "design"
 
 
 def _details(finding: Finding) -> str:

@@ -2,26 +2,24 @@
 
 from __future__ import annotations
 
+from gate.judge.findings import LEVELS, counts_text
 from gate.judge.verdict import Verdict
 
 SHOWN_FINDINGS = 8
-_ORDER = {"fail": 0, "warn": 1, "info": 2}
 
 
 def summary_lines(verdict: Verdict) -> list[str]:
     t = verdict.table
     d = verdict.diagnostics
     active = [f for f in verdict.findings if not f.waived]
-    counts = {level: sum(1 for f in active if f.level == level) for level in ("fail", "warn")}
-    waived = sum(1 for f in verdict.findings if f.waived)
     lines = [
         f"{verdict.status.upper()}  {t.source}  policy '{verdict.policy.name}'"
         + (f"  label '{verdict.label}'" if verdict.label else ""),
         (f"  rows {t.rows_used:,} used of {t.rows:,} ({t.rows_dropped:,} dropped for missing "
          f"values); {len(verdict.features)} features; rank {d.rank} of {d.features + 1}"),
-        f"  findings: {counts['fail']} fail, {counts['warn']} warn, {waived} waived",
+        f"  findings: {counts_text(verdict.findings)}",
     ]
-    ranked = sorted(active, key=lambda f: (_ORDER[f.level], f.rule))
+    ranked = sorted(active, key=lambda f: (LEVELS.index(f.level), f.rule))
     for finding in ranked[:SHOWN_FINDINGS]:
         lines.append(f"  [{finding.level}] {finding.rule}: {finding.message}")
     if len(ranked) > SHOWN_FINDINGS:

@@ -15,8 +15,8 @@ from pathlib import Path
 from typing import Any
 
 from gate.errors import GateError
+from gate.judge.findings import STATUS_RANK
 
-STATUS_RANK = {"pass": 0, "warn": 1, "fail": 2}
 #: A VIF counts as worsened when it grew by more than this fraction (1 %), and a pair's |r|
 #: when it grew by more than this amount: smaller moves are sampling noise between two tables
 #: (a project convention, no source).

@@ -122,7 +122,13 @@ class Diagnostics(_Open):
 class FindingRecord(_Closed):
     rule: str
     level: Literal["fail", "warn", "info"]
-    features: list[str]
+    features: list[str] = Field(description="Canonical order: the design's column order.")
+    subject: Literal["feature", "pair", "group", "dependency", "condition_index", "rows",
+                     "waiver", "segment", "structural"] = Field(
+        description="What the finding is about; with rule, features and segment its identity.")
+    segment: str | None = Field(description="Segment label; null for the whole table.")
+    value_kind: Literal["finite", "infinite", "undefined"] = Field(
+        description="finite: value holds the number; infinite or undefined: value is null.")
     value: Number
     limit: Number
     waived: bool

@@ -12,28 +12,13 @@ import math
 from dataclasses import dataclass, replace
 from typing import Literal
 
-import numpy as np
-
 from gate.design.plan import Design
 from gate.diagnose.diagnostics import Dependency, Diagnostics
+from gate.judge.findings import Finding, Level
 from gate.numerics.kernels import INTERCEPT
 from gate.policy.models import Policy, Waiver
 
-FindingLevel = Literal["fail", "warn", "info"]
-Status = Literal["pass", "warn", "fail"]
 INTERCEPT_NAME = "(intercept)"
-
-
-@dataclass(frozen=True)
-class Finding:
-    rule: str
-    level: FindingLevel
-    features: tuple[str, ...]
-    value: float | None  # None = infinite or not a number (see message)
-    limit: float | None
-    message: str
-    waived: bool = False
-    waiver: int | None = None  # index into policy.waivers
 
 
 @dataclass(frozen=True)
@@ -60,22 +45,40 @@ def judge(diagnostics: Diagnostics, design: Design, policy: Policy, today: dt.da
     return _apply_waivers(raw, policy, today)
 
 
-def _finding_level(level: str) -> FindingLevel:
+def _finding_level(level: str) -> Level:
     """Only enabled limits produce findings, so their level is fail or warn."""
     return "fail" if level == "fail" else "warn"
 
 
-def status_of(findings: tuple[Finding, ...]) -> Status:
-    levels = {f.level for f in findings if not f.waived}
-    return "fail" if "fail" in levels else "warn" if "warn" in levels else "pass"
+def vif_breaches(value: float, limit: float) -> bool:
+    """VIF (or GVIF^(1/df)) > limit; infinite and undefined values breach too."""
+    return not value <= limit
+
+
+def pair_breaches(r: float, limit: float) -> bool:
+    """|r| >= limit."""
+    return abs(r) >= limit
+
+
+def index_breaches(index: float, limit: float) -> bool:
+    """Condition index > limit."""
+    return index > limit
+
+
+def involved_columns(proportions: list[tuple[int, float]], proportion: float) -> list[int]:
+    """Columns whose variance-decomposition proportion on one index is >= ``proportion``
+    (Belsley, Kuh & Welsch 1980: a near dependency involves two or more such columns)."""
+    return [c for c, share in proportions if share >= proportion]
 
 
 def _pair_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) -> list[Finding]:
     limit = policy.limits.pairwise_correlation
     i, j, r = d.pairs(limit.max)
     return [
-        Finding("pairwise_correlation", _finding_level(limit.level), (names[a], names[b]), float(v), limit.max,
-                f"{names[a]} and {names[b]} move together: r = {v:+.3f} (|r| >= {limit.max:g})")
+        Finding("pairwise_correlation", _finding_level(limit.level), (names[a], names[b]),
+                float(v), limit.max,
+                f"{names[a]} and {names[b]} move together: r = {v:+.3f} (|r| >= {limit.max:g})",
+                subject="pair")
         for a, b, v in zip(i.tolist(), j.tolist(), r.tolist())
     ]
 
@@ -85,32 +88,35 @@ def _vif_findings(d: Diagnostics, design: Design, policy: Policy) -> list[Findin
     names = design.features
     grouped = {k for g in design.groups for k in g.indices}
     out: list[Finding] = []
-    breaching = np.flatnonzero(~(d.vif <= limit.max))  # inf and NaN breach too
-    for k in sorted(breaching.tolist(), key=lambda k: -float(d.vif[k])):
+    breaching = [k for k in range(d.vif.size) if vif_breaches(float(d.vif[k]), limit.max)]
+    for k in sorted(breaching, key=lambda k: -float(d.vif[k])):
         if k in grouped:
             continue  # dummies are judged as a group (GVIF), not one by one
         vif = float(d.vif[k])
         if math.isinf(vif):
             message = f"{names[k]}: VIF is infinite (it is part of an exact dependency)"
-            out.append(Finding("vif", _finding_level(limit.level), (names[k],), None, limit.max, message))
+            out.append(Finding("vif", _finding_level(limit.level), (names[k],), None, limit.max,
+                               message, subject="feature", value_kind="infinite"))
             continue
         helpers = ", ".join(f"{names[c]} ({b:+.2f})" for c, b in d.explained_by(k))
         message = (f"{names[k]}: VIF {vif:.3g} > {limit.max:g} (standard error x"
                    f"{math.sqrt(vif):.2f}, auxiliary R^2 {1 - 1 / vif:.4f})"
                    + (f"; explained mostly by {helpers}" if helpers else "")
                    + _effective_rows_text(d.rows, vif))
-        out.append(Finding("vif", _finding_level(limit.level), (names[k],), vif, limit.max, message))
+        out.append(Finding("vif", _finding_level(limit.level), (names[k],), vif, limit.max,
+                           message, subject="feature"))
     for group, result in zip(design.groups, d.groups):
         scaled = result.vif_scale
         if math.isnan(result.gvif):
-            out.append(Finding("vif", _finding_level(limit.level), (group.column,), None, limit.max,
-                               f"{group.column}: GVIF undefined (a dummy is part of an exact "
-                               "dependency)"))
-        elif scaled > limit.max:
+            out.append(Finding("vif", _finding_level(limit.level), (group.column,), None,
+                               limit.max, f"{group.column}: GVIF undefined (a dummy is part of "
+                               "an exact dependency)", subject="group",
+                               value_kind="undefined"))
+        elif vif_breaches(scaled, limit.max):
             out.append(Finding("vif", _finding_level(limit.level), (group.column,), scaled, limit.max,
                                f"{group.column} ({result.df} dummies): GVIF^(1/df) "
                                f"{scaled:.3g} > {limit.max:g} (GVIF {result.gvif:.3g})"
-                               + _effective_rows_text(d.rows, scaled)))
+                               + _effective_rows_text(d.rows, scaled), subject="group"))
     return out
 
 
@@ -133,17 +139,17 @@ def _condition_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) 
     suffix = " after dropping one column per exact dependency" if cond.reduced else ""
     for k in range(cond.indices.size - 1, -1, -1):
         index = float(cond.indices[k])
-        if not index > limit.max:
+        if not index_breaches(index, limit.max):
             break
-        involved = [(c, float(cond.proportions[k, pos])) for pos, c in enumerate(cond.columns)
-                    if cond.proportions[k, pos] >= limit.proportion]
-        involved.sort(key=lambda item: -item[1])
+        shares = [(c, float(cond.proportions[k, pos])) for pos, c in enumerate(cond.columns)]
+        chosen = set(involved_columns(shares, limit.proportion))
+        involved = sorted(((c, p) for c, p in shares if c in chosen), key=lambda item: -item[1])
         label = ", ".join(f"{_column_name(c, names)} ({p:.2f})" for c, p in involved)
-        features = tuple(names[c] for c, _ in involved if c != INTERCEPT)
+        features = tuple(names[c] for c in sorted(chosen) if c != INTERCEPT)  # design order
         message = (f"condition index {index:.3g} > {limit.max:g}{suffix}; variance proportions "
                    f">= {limit.proportion:g}: {label or 'none (a diffuse near dependency)'}")
-        out.append(Finding("condition_number", _finding_level(limit.level), features, index, limit.max,
-                           message))
+        out.append(Finding("condition_number", _finding_level(limit.level), features, index,
+                           limit.max, message, subject="condition_index"))
     return out
 
 
@@ -156,11 +162,12 @@ def _rank_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) -> li
             "rank_deficiency", _finding_level(limit.level), (), float(d.rows), float(columns),
             f"only {d.rows} rows for {columns} design columns (features plus intercept): at "
             f"least {columns - d.rows} exact dependencies are unavoidable; add rows or drop "
-            "features"))
+            "features", subject="rows"))
     for dep in d.dependencies:
         out.append(Finding("rank_deficiency", _finding_level(limit.level),
-                           tuple(names[k] for k in dep.terms), None, None,
-                           describe_dependency(dep, names)))
+                           tuple(names[k] for k in sorted(dep.terms)), None, None,
+                           describe_dependency(dep, names), subject="dependency",
+                           value_kind="undefined"))
     return out
 
 
@@ -194,6 +201,21 @@ def _column_name(column: int, names: tuple[str, ...]) -> str:
     return INTERCEPT_NAME if column == INTERCEPT else names[column]
 
 
+def waiver_covers(waiver_rule: str, listed: set[str] | frozenset[str], rule: str,
+                  features: tuple[str, ...] | frozenset[str]) -> bool:
+    """A waiver covers a finding of its rule when every feature of the finding is listed.
+
+    A finding naming no feature (n <= p, a diffuse condition index) is not about the listed
+    features: the empty set would match every waiver of its rule, so it is never covered.
+    """
+    return waiver_rule == rule and bool(features) and set(features) <= listed
+
+
+def active_waivers(policy: Policy, today: dt.date) -> list[Waiver]:
+    """Waivers not yet expired on ``today`` (an expired waiver covers nothing)."""
+    return [w for w in policy.waivers if w.expires >= today]
+
+
 def _apply_waivers(raw: list[Finding], policy: Policy, today: dt.date
                    ) -> tuple[tuple[Finding, ...], tuple[WaiverState, ...]]:
     findings = list(raw)
@@ -204,11 +226,8 @@ def _apply_waivers(raw: list[Finding], policy: Policy, today: dt.date
         expired = waiver.expires < today
         covered = 0
         for pos, finding in enumerate(findings):
-            if finding.rule != waiver.rule or finding.waived or finding.level == "info":
-                continue
-            # A finding naming no feature (n <= p, a diffuse condition index) is not about
-            # the listed features: the empty set would match every waiver of its rule.
-            if not finding.features or not set(finding.features) <= listed:
+            if finding.waived or finding.level == "info" or \
+                    not waiver_covers(waiver.rule, listed, finding.rule, finding.features):
                 continue
             covered += 1
             if not expired:
@@ -218,11 +237,13 @@ def _apply_waivers(raw: list[Finding], policy: Policy, today: dt.date
         if expired:
             extra.append(Finding("waiver", "warn", tuple(waiver.features), None, None,
                                  f"{who} expired on {waiver.expires.isoformat()} and no longer "
-                                 "applies; renew it with a new date or remove it"))
+                                 "applies; renew it with a new date or remove it",
+                                 subject="waiver", value_kind="undefined"))
             states.append(WaiverState(index, waiver, "expired", covered))
         elif covered == 0:
             extra.append(Finding("waiver", "info", tuple(waiver.features), None, None,
-                                 f"{who} is stale: no finding matches it; remove it"))
+                                 f"{who} is stale: no finding matches it; remove it",
+                                 subject="waiver", value_kind="undefined"))
             states.append(WaiverState(index, waiver, "stale", 0))
         else:
             states.append(WaiverState(index, waiver, "active", covered))

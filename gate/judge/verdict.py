@@ -13,20 +13,21 @@ from gate.design.plan import Design
 from gate.diagnose.diagnostics import Diagnostics
 from gate.diagnose.structural import StructuralTerm
 from gate.errors import GateFailed
-from gate.judge.rules import (
-    INTERCEPT_NAME,
+from gate.judge.findings import (
     Finding,
     Status,
-    WaiverState,
-    describe_dependency,
+    counts_text,
+    exit_code_of,
+    finite_or_none,
     status_of,
+    unwaived,
 )
+from gate.judge.rules import INTERCEPT_NAME, WaiverState, describe_dependency
 from gate.numerics.kernels import INTERCEPT
 from gate.policy.models import Policy
 from gate.stats.routing import GRAM_RESOLUTION
 
 SCHEMA_VERSION = 1
-EXIT_CODES: dict[str, int] = {"pass": 0, "warn": 0, "fail": 1}
 
 
 def tool_version() -> str:
@@ -66,7 +67,7 @@ class Verdict:
     @property
     def exit_code(self) -> int:
         """0 for pass or warn, 1 for fail (what `gate check` returns)."""
-        return EXIT_CODES[self.status]
+        return int(exit_code_of(self.status))
 
     @property
     def features(self) -> tuple[str, ...]:
@@ -79,11 +80,14 @@ class Verdict:
     def raise_for_status(self) -> Verdict:
         """Raise :class:`gate.GateFailed` (carrying this verdict) when the status is fail."""
         if self.status == "fail":
-            raise GateFailed(self)
+            worst = unwaived(self.findings, "fail")
+            detail = "; ".join(f.message for f in worst[:3])
+            more = f" (+{len(worst) - 3} more)" if len(worst) > 3 else ""
+            raise GateFailed(self, f"collinearity gate failed: {detail}{more}")
         return self
 
     def vif(self) -> dict[str, float | None]:
-        return {name: _number(v) for name, v in zip(self.features, self.diagnostics.vif)}
+        return {name: finite_or_none(v) for name, v in zip(self.features, self.diagnostics.vif)}
 
     def effective_rows(self) -> dict[str, float]:
         """n / VIF per feature (n / GVIF^(1/df) per categorical column).
@@ -145,17 +149,17 @@ class Verdict:
             "diagnostics": {
                 "vif": self.vif(),
                 "gvif": {
-                    g.column: {"gvif": _number(res.gvif), "df": res.df,
-                               "gvif_adjusted": _number(res.adjusted)}
+                    g.column: {"gvif": finite_or_none(res.gvif), "df": res.df,
+                               "gvif_adjusted": finite_or_none(res.adjusted)}
                     for g, res in zip(self.design.groups, d.groups)
                 },
-                "condition_number": _number(d.condition_number),
-                "condition_number_reduced": _number(d.condition_number_reduced),
+                "condition_number": finite_or_none(d.condition_number),
+                "condition_number_reduced": finite_or_none(d.condition_number_reduced),
                 "condition_scaling": cond.scaling,
-                "condition_indices": [_number(v) for v in cond.indices],
+                "condition_indices": [finite_or_none(v) for v in cond.indices],
                 "variance_proportions": [
-                    {"index": _number(cond.indices[k]),
-                     "proportions": {_name(c, names): _number(cond.proportions[k, pos])
+                    {"index": finite_or_none(cond.indices[k]),
+                     "proportions": {_name(c, names): finite_or_none(cond.proportions[k, pos])
                                      for pos, c in enumerate(cond.columns)
                                      if cond.proportions[k, pos] >= 0.01}}
                     for k in breaching
@@ -173,22 +177,23 @@ class Verdict:
                 "rank_tolerance": d.rank_tolerance,
                 "gram_resolution": GRAM_RESOLUTION,
                 "route": d.route,
-                "effective_rows": {k: _number(v) for k, v in self.effective_rows().items()},
-                "se_inflation": {name: _number(math.sqrt(v)) if v >= 1 else None
+                "effective_rows": {k: finite_or_none(v) for k, v in self.effective_rows().items()},
+                "se_inflation": {name: finite_or_none(math.sqrt(v)) if v >= 1 else None
                                  for name, v in zip(names, d.vif.tolist())},
                 "structural": [
                     {"feature": names[t.feature], "kind": t.kind,
                      "parents": [names[k] for k in t.parents], "r": t.correlation,
-                     "sample_rows": t.sample_rows, "vif": _number(t.vif),
-                     "vif_centred": _number(t.vif_centred),
-                     "parent_vif": [_number(v) for v in t.parent_vif],
-                     "parent_vif_centred": [_number(v) for v in t.parent_vif_centred]}
+                     "sample_rows": t.sample_rows, "vif": finite_or_none(t.vif),
+                     "vif_centred": finite_or_none(t.vif_centred),
+                     "parent_vif": [finite_or_none(v) for v in t.parent_vif],
+                     "parent_vif_centred": [finite_or_none(v) for v in t.parent_vif_centred]}
                     for t in self.structural
                 ],
             },
             "findings": [
                 {"rule": f.rule, "level": f.level, "features": list(f.features),
-                 "value": _number(f.value), "limit": _number(f.limit), "waived": f.waived,
+                 "subject": f.subject, "segment": f.segment, "value_kind": f.value_kind,
+                 "value": finite_or_none(f.value), "limit": finite_or_none(f.limit), "waived": f.waived,
                  "waiver": f.waiver, "message": f.message}
                 for f in self.findings
             ],
@@ -239,19 +244,20 @@ class SegmentVerdict:
         verdict.json's ``segments`` still lists it)."""
         if self.verdict is None:
             return Finding("segment", "info", (), float(self.rows_used), None,
-                           f"segment {self.label}: reported, not judged ({self.reason})")
+                           f"segment {self.label}: reported, not judged ({self.reason})",
+                           subject="segment", segment=self.label)
         if self.verdict.status == "pass":
             return None
-        active = [f for f in self.verdict.findings if not f.waived and f.level != "info"]
-        worst = [f for f in active if f.level == self.verdict.status]
         level = self.verdict.status
-        features = tuple(dict.fromkeys(x for f in worst for x in f.features))
-        counts = ", ".join(f"{sum(1 for f in active if f.level == lv)} {lv}"
-                           for lv in ("fail", "warn"))
+        worst = unwaived(self.verdict.findings, level)
+        order = {name: k for k, name in enumerate(self.verdict.features)}
+        features = tuple(sorted({x for f in worst for x in f.features},
+                                key=lambda name: (order.get(name, len(order)), name)))
         first = f"; worst: {worst[0].message}" if worst else ""
         return Finding("segment", level, features, None, None,
                        f"segment {self.label} ({self.rows_used:,} rows): "
-                       f"{self.verdict.status} ({counts}){first}")
+                       f"{self.verdict.status} ({counts_text(self.verdict.findings)}){first}",
+                       subject="segment", value_kind="undefined", segment=self.label)
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -268,14 +274,6 @@ class SegmentVerdict:
                 "vif", "gvif", "effective_rows", "condition_number", "rank", "dependencies",
                 "pairs")}
         return out
-
-
-def _number(value: float | None) -> float | None:
-    """JSON has no inf/NaN: null stands for infinite or undefined."""
-    if value is None:
-        return None
-    value = float(value)
-    return value if math.isfinite(value) else None
 
 
 def _name(column: int, names: tuple[str, ...]) -> str:
