@@ -2,21 +2,23 @@
 
 from __future__ import annotations
 
+import argparse
 import shutil
 from importlib import resources
 from pathlib import Path
-
-from gate.api import check
-from gate.artefacts.outputs import write_check_outputs
-from gate.artefacts.terminal import summary_lines
-from gate.examples.bike_share_demand import DROPPED_IN_FIX, write_tables
-from gate.policy.models import load_policy
+from typing import Any
 
 POLICY_FILE = "bike_share_policy.yaml"
 
 
 def run_demo(out_dir: Path) -> int:
     """Write the demo tables and policy into ``out_dir``, check both tables, report."""
+    from gate.api import check
+    from gate.artefacts.outputs import write_check_outputs
+    from gate.artefacts.terminal import summary_lines
+    from gate.examples.bike_share_demand import DROPPED_IN_FIX, write_tables
+    from gate.policy.models import load_policy
+
     out_dir.mkdir(parents=True, exist_ok=True)
     raw_path, fixed_path = write_tables(out_dir)
     policy_path = out_dir / POLICY_FILE
@@ -41,3 +43,17 @@ def run_demo(out_dir: Path) -> int:
           f"--out {out_dir / 'raw'}")
     expected = outcomes[0] == "fail" and outcomes[1] != "fail"
     return 0 if expected else 1
+
+
+def add_commands(commands: Any) -> None:
+    """Register `demo`."""
+    demo = commands.add_parser("demo", help="run the gate on invented bike-share demo tables",
+                               description="Write two invented demo tables (one failing, one "
+                               "corrected) and check both.")
+    demo.add_argument("--out", metavar="DIR", default="gate-demo",
+                      help="folder for the demo tables and artefacts (default: gate-demo)")
+    demo.set_defaults(handler=_run_demo)
+
+
+def _run_demo(args: argparse.Namespace) -> int:
+    return run_demo(Path(args.out))

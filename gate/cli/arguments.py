@@ -1,0 +1,15 @@
+"""Arguments with the same meaning in every command that checks a table."""
+
+from __future__ import annotations
+
+import argparse
+
+
+def add_table_arguments(command: argparse.ArgumentParser) -> None:
+    """TABLE, --policy and --chunk-rows: the same meaning wherever a table is checked."""
+    command.add_argument("table", metavar="TABLE",
+                         help=".parquet (file or folder), .csv, .feather/.arrow")
+    command.add_argument("--policy", metavar="FILE",
+                         help="policy YAML (default: the packaged default policy)")
+    command.add_argument("--chunk-rows", metavar="N", type=int,
+                         help="rows per chunk when streaming (default: sized from the width)")

@@ -1,0 +1,133 @@
+"""`gate check` and `gate check-files`: check tables against a policy and write the artefacts."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+from typing import Any
+
+from gate.cli.arguments import add_table_arguments
+from gate.errors import ExitCode, GateError
+
+
+def add_commands(commands: Any) -> None:
+    """Register `check` and `check-files`."""
+    check = commands.add_parser("check", help="check a table; exit 0 pass/warn, 1 fail, 2 bad "
+                                "input", description="Check a feature table against a policy.")
+    add_table_arguments(check)
+    check.add_argument("--out", metavar="DIR", default="gate-out",
+                       help="folder for verdict.json and summary.html (default: gate-out)")
+    check.add_argument("--label", metavar="TEXT", help="free text carried into the verdict")
+    check.add_argument("--junit", metavar="FILE", type=Path,
+                       help="also write JUnit XML (one test case per rule and subject)")
+    check.add_argument("--audit-log", metavar="FILE", type=Path,
+                       help="append a hash-chained entry to this JSON Lines audit log")
+    check.add_argument("--format", choices=("text", "json"), default="text",
+                       help="stdout: a text summary (default) or the verdict.json document")
+    check.add_argument("--quiet", action="store_true",
+                       help="print nothing on stdout in text format (errors still go to stderr)")
+    check.add_argument("--engine", choices=("local", "dask"), default="local",
+                       help="where the passes run: this process (default) or a Dask cluster")
+    check.add_argument("--scheduler", metavar="ADDRESS",
+                       help="with --engine dask: scheduler address (default: a local cluster "
+                       "of 2 workers)")
+    check.add_argument("--full-matrices", action="store_true",
+                       help="also write matrices.npz (correlation, inverse correlation, VIF, "
+                       "condition indices, proportions, feature names) beside the verdict")
+    check.set_defaults(handler=_run_check)
+
+    files = commands.add_parser(
+        "check-files", help="check several tables (the commit-hook entry); exit = the worst",
+        description="Check each FILE against one policy, writing DIR/<file>/verdict.json and "
+        "summary.html. Exit 0 if all pass or warn, 1 if any fails, 2 if any is unusable.")
+    files.add_argument("files", metavar="FILE", nargs="*",
+                       help="tables (.parquet, .csv, .feather/.arrow)")
+    files.add_argument("--policy", metavar="FILE", help="policy YAML (default: packaged)")
+    files.add_argument("--out", metavar="DIR", default="gate-out",
+                       help="folder for one sub-folder of artefacts per table (default: gate-out)")
+    files.add_argument("--label", metavar="TEXT", help="free text carried into each verdict")
+    files.set_defaults(handler=_run_check_files)
+
+
+def _run_check(args: argparse.Namespace) -> int:
+    from gate.api import check
+    from gate.artefacts.outputs import write_check_outputs
+    from gate.artefacts.terminal import summary_lines
+    from gate.stats.progress import terminal_progress
+
+    if args.scheduler and args.engine != "dask":
+        raise GateError("--scheduler needs --engine dask; add --engine dask")
+    _preload_html_writer()
+    verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
+                    engine=args.engine, scheduler=args.scheduler,
+                    progress=None if args.quiet else terminal_progress)
+    written = write_check_outputs(verdict, Path(args.out), junit=getattr(args, "junit", None),
+                                  audit_log=getattr(args, "audit_log", None),
+                                  full_matrices=args.full_matrices)
+    if getattr(args, "format", "text") == "json":
+        from gate.artefacts.verdict_json import verdict_json
+
+        sys.stdout.write(verdict_json(verdict))
+    elif not getattr(args, "quiet", False):
+        for line in summary_lines(verdict):
+            print(line)
+        print(f"  wrote {', '.join(str(p) for p in written)}")
+    return verdict.exit_code
+
+
+def _preload_html_writer() -> None:
+    """Import the HTML writer's heavy libraries (pandas, great-tables: ~0.9 s) on a thread
+    while the check reads the table; the writer finds them loaded. Measured on 20,000 x 2,000:
+    `gate check` 7.5 s -> 6.9 s (mean of 3 alternating runs each). Any failure here is ignored:
+    the writer's own import reports it."""
+    import threading
+
+    # great-tables probes for IPython on every render to guess the notebook it runs in; in this
+    # command-line process there is none, and importing IPython costs ~0.45 s. A None entry
+    # makes that probe's import fail at once (it handles ImportError and renders plain HTML).
+    sys.modules.setdefault("IPython", None)  # type: ignore[arg-type]
+
+    def load() -> None:
+        try:
+            import great_tables  # noqa: F401
+            import pandas  # noqa: F401
+
+            import gate.artefacts.html_summary  # noqa: F401
+        except Exception:  # noqa: BLE001, S110 - reported by the writer's own import
+            pass
+
+    threading.Thread(target=load, name="gate-preload-html", daemon=True).start()
+
+
+def _run_check_files(args: argparse.Namespace) -> int:
+    from gate.api import check
+    from gate.artefacts.outputs import write_check_outputs
+    from gate.policy.models import load_policy
+
+    policy = load_policy(args.policy)  # a bad policy is one error for every file: exit 2 now
+    worst = 0
+    used: set[str] = set()
+    for name in args.files:
+        path = Path(name).resolve()
+        shown = path.relative_to(Path.cwd()) if path.is_relative_to(Path.cwd()) else path.name
+        folder = "".join(ch if ch.isalnum() or ch in "._-" else "_" for ch in str(shown))
+        while folder in used:
+            folder += "_"
+        used.add(folder)
+        try:
+            verdict = check(name, policy, label=args.label)
+            written = write_check_outputs(verdict, Path(args.out) / folder)
+        except GateError as exc:  # this file is unusable; report it and check the others
+            print(f"gate: error: {exc}", file=sys.stderr)
+            worst = max(worst, ExitCode.BAD_INPUT)
+            continue
+        fails = sum(1 for f in verdict.findings if f.level == "fail" and not f.waived)
+        print(f"{verdict.status.upper():4}  {name}  ({fails} fail finding"
+              f"{'s' if fails != 1 else ''}; {written[0].parent})")
+        if verdict.status == "fail":
+            for finding in [f for f in verdict.findings if f.level == "fail"
+                            and not f.waived][:3]:
+                print(f"      {finding.message}")
+        worst = max(worst, verdict.exit_code)
+    return worst
