@@ -19,8 +19,8 @@ from statsmodels.stats.outliers_influence import variance_inflation_factor
 from statsmodels.tools import add_constant
 
 import gate
-from gate.numerics.kernels import INTERCEPT
 from gate.judge.verdict import Verdict
+from gate.numerics.kernels import INTERCEPT
 from gate.policy.models import Policy
 
 Recorder = Callable[[str, float], None]

@@ -13,11 +13,14 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 from gate.api import check
 from gate.errors import DesignError
-from gate.policy.models import Policy, load_policy, parse_policy
-from gate.remedies.search import escape_glob, policy_with_exclusions, suggest
+from gate.policy.models import Policy, escape_glob, load_policy, parse_policy
+from gate.remedies.policy_edit import policy_with_exclusions
+from gate.remedies.search import suggest
 
 SEED = 20261202
 VIF_ONLY = Policy.model_validate({"name": "vif-only", "limits": {
@@ -341,3 +344,81 @@ def test_condition_number_at_fail_level_uses_the_belsley_scaling() -> None:
     after = check(frame.drop(columns="service_year"), policy)
     assert after.status == "pass"
     assert after.diagnostics.condition_number == pytest.approx(step.condition_after, rel=1e-9)
+
+
+def _excluding(policy: Policy, drops: Sequence[str]) -> Policy:
+    columns = policy.columns.model_copy(update={
+        "exclude": list(policy.columns.exclude) + [escape_glob(d) for d in drops]})
+    return policy.model_copy(update={"columns": columns})
+
+
+def test_keep_of_a_breaching_feature_gives_a_set_that_passes_check() -> None:
+    # Regression (issue 9.1): a --keep feature that itself breaches the VIF limit was never
+    # evaluated on the reduced route, so suggest printed a set that `gate check` then failed.
+    # Invented mixing of seven N(0, 1) columns; seed found by a search for this failure.
+    rng = np.random.default_rng(22)
+    n, p = 300, 7
+    z = rng.normal(size=(n, p))
+    mix = np.eye(p) + rng.normal(size=(p, p)) * (rng.random((p, p)) < 0.35) * 1.5
+    frame = pd.DataFrame(z @ mix, columns=[f"x{i}" for i in range(p)])
+    verdict = check(frame, VIF_ONLY)
+    assert verdict.vif()["x0"] > 5.0  # the kept feature breaches
+    result = suggest(verdict, keep=["x0"], method="exact")
+    assert result.solved and "x0" not in result.drops
+    # The reference: brute force over every drop set that keeps x0 (numpy inverse).
+    names = list(frame.columns)
+    corr = np.corrcoef(frame.to_numpy().T)
+    best = min(len(drop) for size in range(len(names))
+               for drop in itertools.combinations(range(1, len(names)), size)
+               if feasible(corr, [j for j in range(len(names)) if j not in drop]))
+    assert len(result.drops) == best
+    again = check(frame, _excluding(VIF_ONLY, result.drops))
+    assert again.status != "fail", [f.message for f in again.findings]
+
+
+def test_a_kept_feature_driven_by_an_unflagged_categorical_is_solved() -> None:
+    # Regression (issue 9.2): the driver of a kept breaching feature is a categorical whose
+    # GVIF^(1/df) is under the limit, so it was never a candidate: "drop 0 ... not solved".
+    rng = np.random.default_rng(SEED + 1)
+    n = 800
+    kind = rng.choice(["dock", "street", "hub", "depot"], size=n)
+    load = 2.0 * (kind == "hub") + 0.25 * rng.normal(size=n)
+    frame = pd.DataFrame({"load": load, "kind": kind, "temp": rng.normal(size=n)})
+    policy = VIF_ONLY.model_copy(update={"columns": VIF_ONLY.columns.model_copy(
+        update={"categorical": ["kind"]})})
+    verdict = check(frame, policy)
+    assert verdict.vif()["load"] > 5.0
+    assert verdict.diagnostics.groups[0].vif_scale <= 5.0  # the categorical is not flagged
+    result = suggest(verdict, keep=["load"])
+    assert result.solved and result.drops == ("kind",), result.lines()
+    assert check(frame, _excluding(policy, result.drops)).status != "fail"
+
+
+def test_no_set_exists_names_the_constraint_and_is_exhaustive() -> None:
+    # A kept pair of near-duplicates: nothing droppable can help.
+    rng = np.random.default_rng(SEED + 2)
+    n = 300
+    x = rng.normal(size=n)
+    frame = pd.DataFrame({"x": x, "x2": x + 0.01 * rng.normal(size=n),
+                          "z": rng.normal(size=n)})
+    result = suggest(check(frame, VIF_ONLY), keep=["x", "x2"])
+    assert not result.solved and result.exhaustive
+    assert any("while keeping x, x2" in note for note in result.notes), result.notes
+
+
+@settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(seed=st.integers(0, 2**32 - 1), keep_first=st.booleans())
+def test_property_a_printed_set_always_passes_check(seed: int, keep_first: bool) -> None:
+    # The contract of suggest: whatever set it prints as solved passes `gate check`.
+    rng = np.random.default_rng(seed)
+    n, p = 200, 6
+    mix = np.eye(p) + rng.normal(size=(p, p)) * (rng.random((p, p)) < 0.4) * 1.5
+    frame = pd.DataFrame(rng.normal(size=(n, p)) @ mix, columns=[f"x{i}" for i in range(p)])
+    verdict = check(frame, VIF_ONLY)
+    keep = ["x0"] if keep_first else []
+    result = suggest(verdict, keep=keep)
+    if result.solved:
+        again = check(frame, _excluding(VIF_ONLY, result.drops))
+        assert again.status != "fail", (result.drops, [f.message for f in again.findings])
+    else:
+        assert keep, "without --keep some set (every feature but one) always passes"

@@ -43,12 +43,12 @@ def _run_suggest(args: argparse.Namespace) -> int:
     from gate.api import check
     from gate.artefacts.files import write_atomic
     from gate.policy.models import load_policy, packaged_policy_path
-    from gate.remedies.search import (
+    from gate.remedies.policy_edit import (
         policy_with_exclusions,
         read_preference,
-        suggest,
         suggestion_comment,
     )
+    from gate.remedies.search import suggest
 
     policy = load_policy(args.policy)
     keep = [k.strip() for k in args.keep.split(",") if k.strip()]

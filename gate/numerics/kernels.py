@@ -31,6 +31,20 @@ def correlation_block(comoment: FloatArray, columns: IntArray, scale: FloatArray
     return block
 
 
+def cholesky_or_none(matrix: FloatArray) -> FloatArray | None:
+    """Upper Cholesky factor R (R'R = matrix), or None when the matrix is not numerically
+    positive definite (LAPACK dpotrf fails, or the factor has a non-finite or zero diagonal).
+    The one place a failed Cholesky is handled."""
+    if matrix.size == 0:
+        return np.zeros((0, 0))
+    try:
+        r = sla.cholesky(matrix, lower=False, check_finite=False)
+    except (np.linalg.LinAlgError, ValueError):
+        return None
+    r = np.asarray(r)
+    return r if np.all(np.isfinite(r)) and np.all(np.diag(r) > 0) else None
+
+
 def certified_cholesky(corr: FloatArray, resolution: float
                        ) -> tuple[FloatArray | None, FloatArray | None]:
     """Upper Cholesky factor of corr and its inverse if every singular-value ratio of the
@@ -42,9 +56,8 @@ def certified_cholesky(corr: FloatArray, resolution: float
     singular-value ratio without an eigen-decomposition in all but borderline cases; only then
     do the eigenvalues decide.
     """
-    try:
-        rt: FloatArray = np.asarray(sla.cholesky(corr, lower=False, check_finite=False))
-    except np.linalg.LinAlgError:
+    rt = cholesky_or_none(corr)
+    if rt is None:
         return None, None
     inverse, info = sla.lapack.dtrtri(rt, lower=0)
     inverse = np.asarray(inverse)

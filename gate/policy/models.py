@@ -275,5 +275,14 @@ def _line_of(text: str, loc: tuple[Any, ...]) -> int | None:
     return line
 
 
+#: Characters that make a name a shell-style glob, and their escaped (literal) forms.
+GLOB_SPECIAL = {"*": "[*]", "?": "[?]", "[": "[[]"}
+
+
+def escape_glob(name: str) -> str:
+    """A glob that matches exactly ``name`` (columns.include/exclude are shell-style globs)."""
+    return "".join(GLOB_SPECIAL.get(ch, ch) for ch in name)
+
+
 def today_utc() -> dt.date:
     return dt.datetime.now(dt.UTC).date()

@@ -51,25 +51,38 @@ Tie-break among sets of equal size.
 from __future__ import annotations
 
 import datetime as dt
-import json
 import math
-import re
 import time
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Literal
 
 import numpy as np
 import scipy.linalg as sla
-import yaml
 
 from gate.design.plan import Design
 from gate.diagnose.diagnostics import Diagnostics
-from gate.errors import DesignError, PolicyError
+from gate.errors import DesignError
+from gate.judge.rules import (
+    active_waivers,
+    index_breaches,
+    involved_columns,
+    vif_breaches,
+    waiver_covers,
+)
 from gate.judge.verdict import Verdict
-from gate.numerics.kernels import FloatArray, IntArray, condition_indices
-from gate.policy.models import Policy, parse_policy, today_utc
+from gate.numerics.kernels import (
+    FloatArray,
+    IntArray,
+    belsley_kuh_welsch,
+    cholesky_or_none,
+    condition_indices,
+    gvif,
+    scaled_design_factor,
+    squared_row_norms,
+)
+from gate.policy.models import Policy, today_utc
+from gate.remedies.confirm import confirm
 
 Method = Literal["auto", "exact", "greedy"]
 #: Drop priority of a unit: (preference key, design position); smaller = dropped sooner.
@@ -81,9 +94,11 @@ MAX_NODES = 20_000
 #: Minimum-size sets compared by the tie-break before the exact search stops enumerating
 #: (branches are tried in tie-break order, so the first ones found are the likeliest winners).
 MAX_TIES = 64
+#: A unit whose standardised auxiliary-regression coefficient on a breaching feature is at most
+#: this (|P_jk / P_jj|) cannot change that feature's VIF by more than rounding when dropped.
+DRIVER_CUTOFF = 1e-9
 #: Relative singular-value tolerance when ranking the (clean, rounded) dependency coefficients.
 NULL_SPACE_TOLERANCE = 1e-6
-GLOB_SPECIAL = {"*": "[*]", "?": "[?]", "[": "[[]"}
 
 
 # --- results -------------------------------------------------------------------------------
@@ -233,17 +248,19 @@ class _Problem:
         self.cond_max = cond.max if cond.level == "fail" else None
         self.scaling = cond.scaling
         self.proportion = cond.proportion
-        active = [w for w in policy.waivers if w.expires >= today]
-        self.vif_waived = {n for w in active if w.rule == "vif" for n in w.features}
-        self.pair_waivers = [set(w.features) for w in active if w.rule == "pairwise_correlation"]
-        self.cond_waivers = [set(w.features) for w in active if w.rule == "condition_number"]
+        # Waivers through the judge's own matching (gate.judge.rules.waiver_covers).
+        self.waivers = [(w.rule, frozenset(w.features)) for w in active_waivers(policy, today)]
         self.pairs: list[tuple[int, int, float]] = []
         if self.pair_max is not None:
             first, second, values = diagnostics.pairs(self.pair_max)
             for a, b, v in zip(first.tolist(), second.tolist(), values.tolist()):
-                both = {self.names[a], self.names[b]}
-                if not any(both <= w for w in self.pair_waivers):
+                if not self.waived("pairwise_correlation", (self.names[a], self.names[b])):
                     self.pairs.append((a, b, v))
+        self.watch: frozenset[str] = frozenset()  # kept units evaluated on the fast route
+
+    def waived(self, rule: str, features: tuple[str, ...]) -> bool:
+        return any(waiver_covers(w_rule, listed, rule, features)
+                   for w_rule, listed in self.waivers)
 
     # columns and factors
 
@@ -262,7 +279,8 @@ class _Problem:
 
     # evaluation
 
-    def prepare(self, base: frozenset[str], candidates: Iterable[str]) -> None:
+    def prepare(self, base: frozenset[str], candidates: Iterable[str],
+                watch: Iterable[str] = ()) -> None:
         """Precompute the Schur complement of the columns every candidate set keeps.
 
         With F the kept non-candidate columns and S the kept candidate columns,
@@ -270,14 +288,21 @@ class _Problem:
         candidates -- the only units that can breach, since dropping never raises an
         inflation -- come from the m x m matrix Z = C_cc - Y'Y, Y = R_F^-T C_Fc, whatever p is.
         The condition number needs the whole factor, so it keeps the full route.
+
+        ``watch``: kept units that breach now (e.g. a --keep feature in breach). They are never
+        dropped but stay in the reduced block, so their values are judged on every candidate
+        set too; units not watched and not candidates cannot breach (dropping never raises an
+        inflation, and they do not breach now).
         """
         self.fast = None
         if self.cond_max is not None:
             return
         chosen = frozenset(candidates)
+        judged = chosen | frozenset(watch)
         kept = self.kept_columns(base)
-        movable = np.asarray([c for c in kept if self.column_unit[c] in chosen], dtype=np.intp)
-        fixed = np.asarray([c for c in kept if self.column_unit[c] not in chosen], dtype=np.intp)
+        movable = np.asarray([c for c in kept if self.column_unit[c] in judged], dtype=np.intp)
+        fixed = np.asarray([c for c in kept if self.column_unit[c] not in judged],
+                           dtype=np.intp)
         r_fixed = self.factor(fixed)
         if r_fixed is None:
             return
@@ -336,30 +361,23 @@ class _Problem:
 
     @staticmethod
     def factor_of(block: FloatArray) -> FloatArray | None:
-        if block.size == 0:
-            return np.zeros((0, 0))
-        try:
-            r = sla.cholesky(block, lower=False, check_finite=False)
-        except (np.linalg.LinAlgError, ValueError):
-            return None
-        return np.asarray(r) if np.all(np.isfinite(r)) and np.all(np.diag(r) > 0) else None
+        return cholesky_or_none(block)
 
     def _inflation(self, kept: IntArray, inverse: FloatArray, inflation: dict[str, float],
                    breaches: list[_Breach], explainers: dict[str, list[str]]) -> None:
         position = {int(c): k for k, c in enumerate(kept)}
-        vif = np.einsum("ij,ij->i", inverse, inverse)
+        vif = squared_row_norms(inverse)
         for unit in dict.fromkeys(self.column_unit[j] for j in kept):
             cols = [position[int(c)] for c in self.unit_columns[unit]]
             if unit in self.group_units:
-                p_gg = inverse[cols] @ inverse[cols].T
-                _, log_c = np.linalg.slogdet(self.d.correlation[np.ix_(
-                    self.unit_columns[unit], self.unit_columns[unit])])
-                _, log_p = np.linalg.slogdet(p_gg)
-                value = float(np.exp((log_c + log_p) / len(cols)))
+                columns = self.unit_columns[unit]
+                value = float(gvif(self.d.correlation[np.ix_(columns, columns)],
+                                   inverse[cols] @ inverse[cols].T) ** (1.0 / len(cols)))
             else:
                 value = float(vif[cols[0]])
             inflation[unit] = value
-            if self.vif_max is not None and value > self.vif_max and unit not in self.vif_waived:
+            if self.vif_max is not None and vif_breaches(value, self.vif_max) and \
+                    not self.waived("vif", (unit,)):
                 explainers[unit] = self._explainers(inverse, kept, cols)
                 breaches.append(_Breach("vif", (unit,), value,
                                         f"{self.label}{unit}: VIF {value:.3g} > "
@@ -371,32 +389,31 @@ class _Problem:
         weight = np.max(np.abs(rows) / np.abs(np.diag(rows[:, cols]))[:, None], axis=0)
         order = np.argsort(-weight, kind="stable")
         own = self.column_unit[int(kept[cols[0]])]
+        # A unit whose coefficient is zero cannot change this inflation when dropped.
         return list(dict.fromkeys(self.column_unit[int(kept[k])] for k in order
-                                  if self.column_unit[int(kept[k])] != own))
+                                  if self.column_unit[int(kept[k])] != own
+                                  and weight[k] > DRIVER_CUTOFF))
 
     def _condition_breaches(self, kept: IntArray, r: FloatArray) -> list[_Breach]:
         assert self.cond_max is not None
         d = self.d
         indices = condition_indices(d.weight_sum, d.means, kept, r, d.scales, self.scaling)
-        if indices.size == 0 or not indices[-1] > self.cond_max:
+        if indices.size == 0 or not index_breaches(float(indices[-1]), self.cond_max):
             return []
-        from gate.numerics.kernels import scaled_design_factor
-
         factor, columns = scaled_design_factor(d.weight_sum, d.means, kept, r, d.scales,
                                                self.scaling)
-        _, mu, vt = sla.svd(factor, full_matrices=False, check_finite=False)
-        phi = (vt.T / mu) ** 2
-        proportions = (phi / phi.sum(axis=1, keepdims=True)).T
+        all_indices, proportions = belsley_kuh_welsch(factor)
         out: list[_Breach] = []
-        for k in range(mu.size - 1, -1, -1):
-            index = float(mu[0] / mu[k])
-            if not index > self.cond_max:
+        for k in range(all_indices.size - 1, -1, -1):
+            index = float(all_indices[k])
+            if not index_breaches(index, self.cond_max):
                 break
-            involved = sorted(((float(proportions[k, pos]), c) for pos, c in enumerate(columns)
-                               if c >= 0), reverse=True)
-            named = {self.names[c] for share, c in involved if share >= self.proportion}
-            if named and any(named <= w for w in self.cond_waivers):
+            shares = [(c, float(proportions[k, pos])) for pos, c in enumerate(columns)]
+            chosen = set(involved_columns(shares, self.proportion))
+            named = tuple(self.names[c] for c in sorted(chosen) if c >= 0)
+            if self.waived("condition_number", named):
                 continue
+            involved = sorted(((share, c) for c, share in shares if c >= 0), reverse=True)
             units = tuple(dict.fromkeys(self.column_unit[c] for _, c in involved))
             out.append(_Breach("condition", units, index,
                                f"{self.label}condition index {index:.3g} > {self.cond_max:g}"))
@@ -500,9 +517,10 @@ class _Search:
         self.cache: dict[frozenset[str], tuple[bool, list[_Breach], dict[str, float],
                                                dict[str, list[str]]]] = {}
 
-    def prepare(self, base: frozenset[str], candidates: list[str]) -> None:
+    def prepare(self, base: frozenset[str], candidates: list[str],
+                watch: Iterable[str] = ()) -> None:
         for problem in self.problems:
-            problem.prepare(base, candidates)
+            problem.prepare(base, candidates, watch)
         self.cache.clear()
 
     def state(self, dropped: frozenset[str]) -> _State:
@@ -696,23 +714,26 @@ def suggest(verdict: Verdict, *, keep: Sequence[str] = (), prefer: Sequence[str]
     dropped_by_dependency = list(base)
     base_f = frozenset(base)
     state = search.state(base_f)
-    candidates = [u for u in units if u not in keep_set and u not in base_f
-                  and any(u in b.units for b in state.breaches if b.kind != "singular")]
+    droppable = [u for u in units if u not in keep_set and u not in base_f]
+    # Every droppable unit that can change a breaching value: the units in a breach, and the
+    # units with a non-negligible coefficient in a breaching unit's auxiliary regression
+    # (a --keep feature in breach is fixed only through them).
+    in_breach = {u for b in state.breaches if b.kind != "singular" for u in b.units}
+    drivers = {u for lead in state.explainers for u in state.explainers[lead]}
+    candidates = [u for u in droppable if u in in_breach or u in drivers]
     if state.breaches and any(b.kind == "singular" for b in state.breaches) and not unresolved:
-        candidates = [u for u in units if u not in keep_set and u not in base_f]
+        candidates = list(droppable)
     chosen: list[str] = []
     exhaustive = True
     used: Literal["none", "exact", "greedy"] = "none"
     lower = 0
     if not state.feasible and candidates:
         everything = base_f | frozenset(candidates)
-        if not search.state(everything).feasible:
-            wider = [u for u in units if u not in keep_set and u not in base_f]
-            if len(wider) > len(candidates):
-                notes.append("dropping every flagged feature is not enough; the search "
-                             "widened to all droppable features")
-                candidates = wider
-        search.prepare(base_f, candidates)
+        if not search.state(everything).feasible and len(droppable) > len(candidates):
+            notes.append("dropping every flagged feature is not enough; the search "
+                         "widened to all droppable features")
+            candidates = list(droppable)
+        search.prepare(base_f, candidates, watch=in_breach - set(candidates))
         lower = search.lower_bound(base_f, candidates)
         use_exact = method == "exact" or (method == "auto" and len(candidates) <= exact_limit)
         solutions: list[frozenset[str]] | None = None
@@ -739,6 +760,26 @@ def suggest(verdict: Verdict, *, keep: Sequence[str] = (), prefer: Sequence[str]
     final = base_f | frozenset(chosen)
     end_state = search.state(final)
     remaining = tuple(b.label for b in end_state.breaches) + tuple(unresolved)
+    solved = end_state.feasible and not unresolved
+    if not solved and candidates and len(candidates) == len(droppable):
+        # No set exists: name what prevents it (what still fails with every droppable unit
+        # dropped), and say the search was exhaustive only when it was.
+        blocked = search.state(base_f | frozenset(droppable))
+        if not blocked.feasible:
+            kept_note = f" while keeping {', '.join(sorted(keep_set))}" if keep_set else ""
+            notes.append("no drop set passes" + kept_note + ": even with every droppable "
+                         "feature dropped, " + "; ".join(b.label for b in blocked.breaches))
+            exhaustive = True
+    elif not solved:
+        exhaustive = False
+    if solved:
+        # The contract: a set that is printed or written passes every fail-level limit under
+        # `gate check`. The one judge confirms it on the reduced statistics.
+        disagreement = confirm(verdict, tuple(dropped_by_dependency + chosen), today)
+        if disagreement:
+            solved = False
+            remaining = tuple(disagreement)
+            notes.append("the judge does not confirm this set, so it is not offered")
     steps = _steps(search, dependency_steps, chosen, dropped_by_dependency)
     kept = tuple(name for j, name in enumerate(whole.names) if whole.column_unit[j] not in final)
     return Suggestion(
@@ -746,7 +787,7 @@ def suggest(verdict: Verdict, *, keep: Sequence[str] = (), prefer: Sequence[str]
         method=used, candidates=tuple(candidates), nodes=search.nodes,
         evaluations=search.evaluations,
         seconds=time.perf_counter() - started, exhaustive=exhaustive, lower_bound=lower,
-        solved=end_state.feasible and not unresolved, remaining=remaining,
+        solved=solved, remaining=remaining,
         loss=whole.loss(final), notes=tuple(notes))
 
 
@@ -871,139 +912,3 @@ def _steps(search: _Search, reasons: dict[str, str], chosen: list[str],
             breaches_after=len(after.breaches)))
         dropped, before = after_set, after
     return steps
-
-
-# --- preference file and policy rewrite -------------------------------------------------------
-
-def read_preference(path: str | Path) -> list[str]:
-    """Feature names, most important first: one per line; '#' starts a comment."""
-    file = Path(path)
-    try:
-        text = file.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise PolicyError(f"{file}: cannot read the preference file ({exc.strerror or exc})") \
-            from None
-    names: list[str] = []
-    for number, line in enumerate(text.splitlines(), 1):
-        name = line.split("#", 1)[0].strip()
-        if not name:
-            continue
-        if name in names:
-            raise PolicyError(f"{file}: line {number}: '{name}' is listed twice; list each "
-                              "feature once, most important first")
-        names.append(name)
-    return names
-
-
-def escape_glob(name: str) -> str:
-    """A glob that matches exactly ``name`` (columns.include/exclude are shell-style globs)."""
-    return "".join(GLOB_SPECIAL.get(ch, ch) for ch in name)
-
-
-def _yaml_item(value: str) -> str:
-    return value if re.fullmatch(r"[A-Za-z_][A-Za-z0-9_.=-]*", value) else json.dumps(value)
-
-
-def policy_with_exclusions(text: str, drops: Sequence[str], why: str) -> str:
-    """The policy text with ``drops`` added to columns.exclude and a comment saying why.
-
-    Edits the text in place where the YAML layout allows (block or flow lists, a missing
-    exclude or columns key), so the original comments survive; otherwise the policy is
-    re-serialised with a header comment. The result is validated before it is returned.
-    """
-    items = [escape_glob(d) for d in drops]
-    comment = f"# {why}"
-    for edit in (_edit_in_place, _rewrite):
-        candidate = edit(text, items, comment)
-        if candidate is None:
-            continue
-        try:
-            policy = parse_policy(candidate, source="<rewritten policy>")
-        except PolicyError:
-            continue
-        if set(items) <= set(policy.columns.exclude):
-            return candidate
-    raise PolicyError("cannot add the drops to columns.exclude of this policy; add them by "
-                      f"hand: {', '.join(items)}")
-
-
-def _edit_in_place(text: str, items: list[str], comment: str) -> str | None:
-    try:
-        root = yaml.compose(text, Loader=yaml.SafeLoader)
-    except yaml.YAMLError:
-        return None
-    if not isinstance(root, yaml.MappingNode):
-        return None
-    lines = text.splitlines(keepends=True)
-    if lines and not lines[-1].endswith("\n"):
-        lines[-1] += "\n"
-    columns = next(((k, v) for k, v in root.value if k.value == "columns"), None)
-    if columns is None:
-        body = "".join(lines)
-        return body + f"{comment}\ncolumns:\n  exclude: [{', '.join(map(_yaml_item, items))}]\n"
-    _, node = columns
-    if not isinstance(node, yaml.MappingNode) or node.flow_style:
-        return None
-    exclude = next(((k, v) for k, v in node.value if k.value == "exclude"), None)
-    if exclude is None:
-        if not node.value:
-            return None
-        indent = " " * node.value[0][0].start_mark.column
-        line = node.value[0][0].start_mark.line
-        new = [f"{indent}{comment}\n",
-               f"{indent}exclude: [{', '.join(map(_yaml_item, items))}]\n"]
-        return "".join(lines[:line] + new + lines[line:])
-    ex_key, seq = exclude
-    indent = " " * ex_key.start_mark.column
-    if isinstance(seq, yaml.SequenceNode) and seq.flow_style:
-        old = [text[v.start_mark.index:v.end_mark.index] for v in seq.value]
-        flow = "[" + ", ".join(old + [_yaml_item(i) for i in items]) + "]"
-        body = text[:seq.start_mark.index] + flow + text[seq.end_mark.index:]
-        out = body.splitlines(keepends=True)
-        at = ex_key.start_mark.line
-        return "".join(out[:at] + [f"{indent}{comment}\n"] + out[at:])
-    if isinstance(seq, yaml.SequenceNode) and seq.value:
-        first = seq.value[0]
-        first_line = lines[first.start_mark.line]
-        dash = first_line.rfind("-", 0, first.start_mark.column)
-        if dash < 0:
-            return None
-        last = seq.value[-1]
-        end_line = last.end_mark.line if last.end_mark.column > 0 else last.end_mark.line - 1
-        pad = " " * dash
-        new = [f"{pad}{comment}\n"] + [f"{pad}- {_yaml_item(i)}\n" for i in items]
-        return "".join(lines[:end_line + 1] + new + lines[end_line + 1:])
-    if isinstance(seq, yaml.ScalarNode) and seq.value in ("", "null", "~"):
-        flow = "[" + ", ".join(_yaml_item(i) for i in items) + "]"
-        line = ex_key.start_mark.line
-        new = [f"{indent}{comment}\n", f"{indent}exclude: {flow}\n"]
-        return "".join(lines[:line] + new + lines[line + 1:])
-    return None
-
-
-def _rewrite(text: str, items: list[str], comment: str) -> str | None:
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError:
-        return None
-    if not isinstance(data, dict):
-        return None
-    columns = data.setdefault("columns", {}) or {}
-    data["columns"] = columns
-    exclude = list(columns.get("exclude") or [])
-    columns["exclude"] = exclude + [i for i in items if i not in exclude]
-    header = f"{comment}\n# (re-serialised: the original file's comments were not kept)\n"
-    return header + str(yaml.safe_dump(data, sort_keys=False, default_flow_style=False))
-
-
-def suggestion_comment(suggestion: Suggestion, policy: Policy, today: dt.date | None = None
-                       ) -> str:
-    """The comment written above the added exclusions."""
-    limits = policy.limits
-    failing = [f"{name} > {getattr(limit, 'max', '')}".rstrip(" >") for name, limit in (
-        ("vif", limits.vif), ("pairwise_correlation", limits.pairwise_correlation),
-        ("condition_number", limits.condition_number),
-        ("rank_deficiency", limits.rank_deficiency)) if limit.level == "fail"]
-    when = (today or today_utc()).isoformat()
-    return (f"gate suggest {when}: excluded {', '.join(suggestion.drops)} so every fail-level "
-            f"limit passes ({'; '.join(failing)})")

@@ -18,7 +18,7 @@ import pyarrow.compute as pc
 
 from gate.design.plan import DesignPlan, RowCounts
 from gate.errors import TableError
-from gate.policy.models import Policy
+from gate.policy.models import Policy, escape_glob
 from gate.read.sources import DEFAULT_CHUNK_ROWS, Column, TableSource
 from gate.stats.accumulators import CentredGram
 from gate.stats.local import ProgressFactory, encoded_chunks
@@ -57,13 +57,9 @@ def segment_policy(policy: Policy) -> Policy:
     if policy.segments is None:
         return policy
     exclude = list(policy.columns.exclude) + [
-        _escape(c) for c in policy.segments.by if _escape(c) not in policy.columns.exclude]
+        escape_glob(c) for c in policy.segments.by if escape_glob(c) not in policy.columns.exclude]
     columns = policy.columns.model_copy(update={"exclude": exclude})
     return policy.model_copy(update={"columns": columns})
-
-
-def _escape(name: str) -> str:
-    return "".join({"*": "[*]", "?": "[?]", "[": "[[]"}.get(ch, ch) for ch in name)
 
 
 def check_segment_columns(source: TableSource, by: Sequence[str]) -> None:
