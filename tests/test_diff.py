@@ -148,3 +148,68 @@ def test_diff_of_real_verdicts(tmp_path: Path, run_cli: Any, write_table: Any) -
     run_cli(["check", docks, "--out", tmp_path / "b", "--quiet"])
     result = run_cli(["diff", tmp_path / "a" / "verdict.json", tmp_path / "b" / "verdict.json"])
     assert result.code == 1 and "pass -> fail" in result.out
+
+
+def _mixed_frame(seed: int) -> Any:
+    import numpy as np
+    import pandas as pd
+
+    rng = np.random.default_rng(seed)
+    mix = np.eye(6) + rng.normal(size=(6, 6)) * (rng.random((6, 6)) < 0.4) * 1.5
+    return pd.DataFrame(rng.normal(size=(250, 6)) @ mix, columns=[f"x{i}" for i in range(6)])
+
+
+def _tables(tmp_path: Path) -> dict[str, tuple[Path, str]]:
+    """Every multi-feature table family of the suite that fails, with a policy text."""
+    from conftest import make_docks_frame, write_frame
+
+    from gate.examples.bike_share_demand import write_tables
+
+    raw, _ = write_tables(tmp_path / "demo", rows=1_500)
+    demo_policy = (Path(__file__).resolve().parents[1] / "examples" /
+                   "bike_share_policy.yaml").read_text(encoding="utf-8")
+    strict = ("name: strict\nlimits:\n  vif: {max: 5, level: fail}\n"
+              "  condition_number: {max: 30, level: fail}\n"
+              "  pairwise_correlation: {max: 0.8, level: warn}\n")
+    return {
+        "docks": (write_frame(make_docks_frame(), tmp_path / "docks.parquet"),
+                  strict + "columns: {categorical: [weather_kind]}\n"),
+        "demo": (raw, demo_policy),
+        "mixed-22": (write_frame(_mixed_frame(22), tmp_path / "mixed22.parquet"), strict),
+        "mixed-5": (write_frame(_mixed_frame(5), tmp_path / "mixed5.parquet"), strict),
+    }
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name", ["docks", "demo", "mixed-22", "mixed-5"])
+def test_check_suggest_check_diff_reads_as_improved(name: str, tmp_path: Path,
+                                                    run_cli: Any) -> None:
+    # The invariant: applying the remedy gate suggests never reads as "worse" in gate diff.
+    table, policy_text = _tables(tmp_path)[name]
+    policy = tmp_path / "policy.yaml"
+    policy.write_text(policy_text, encoding="utf-8")
+    before = run_cli(["check", table, "--policy", policy, "--out", tmp_path / "before"])
+    assert before.code == 1, before.out + before.err
+    fixed = tmp_path / "fixed.yaml"
+    proposed = run_cli(["suggest", table, "--policy", policy, "--write-policy", fixed])
+    assert proposed.code == 0, proposed.out + proposed.err
+    after = run_cli(["check", table, "--policy", fixed, "--out", tmp_path / "after"])
+    assert after.code == 0, after.out
+    diff = run_cli(["diff", tmp_path / "before" / "verdict.json",
+                    tmp_path / "after" / "verdict.json", "--format", "json"])
+    assert diff.code == 0, diff.out
+    document = json.loads(diff.out)
+    assert document["better"] and not document["worse"], document
+    assert document["resolved_findings"]
+
+
+def test_a_verdict_with_a_string_vif_is_refused_in_one_line(tmp_path: Path,
+                                                            run_cli: Any) -> None:
+    bad = copy.deepcopy(BASE)
+    bad["diagnostics"]["vif"]["air"] = "lots"
+    old, new = tmp_path / "old.json", tmp_path / "new.json"
+    old.write_text(json.dumps(BASE))
+    new.write_text(json.dumps(bad))
+    result = run_cli(["diff", old, new])
+    assert result.code == 2 and "Traceback" not in result.err
+    assert result.err.count("\n") == 1 and "not a number" in result.err
