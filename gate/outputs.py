@@ -28,6 +28,7 @@ import os
 import shutil
 import tempfile
 import uuid
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -209,22 +210,62 @@ def _manifest(verdict: Verdict, plan: OutputPlan, stage: Path, junit_text: str |
     return json.dumps(document, indent=2, ensure_ascii=False) + "\n"
 
 
-def verify_set(out_dir: str | Path) -> list[str]:
+def verify_set(out_dir: str | Path, *, lock: bool = True, attempts: int = 5) -> list[str]:
     """Problems with the artefact set in ``out_dir`` (empty when whole): every file listed in
     manifest.json is present with its sha256, no other file is, and a JUnit file outside the
-    folder is the one this run wrote. For readers that must not act on a mixed set."""
+    folder is the one this run wrote. For readers that must not act on a mixed set.
+
+    It reads the way a reader should: open the folder once and read every file relative to that
+    handle, so a run that swaps in a new set meanwhile cannot mix two sets into one reading;
+    if the old set was removed while being read, it reads the new one (up to ``attempts``).
+    With ``lock`` it first waits for a commit in progress (a shared lock on the parent folder),
+    so a JUnit file outside the folder is not caught between its rename and the folder's.
+    """
     folder = Path(out_dir)
+    if lock:
+        with folder_locks([Path(os.path.realpath(folder.parent))], shared=True):
+            return verify_set(folder, lock=False, attempts=attempts)
+    problems: list[str] = []
+    for _ in range(attempts):
+        try:
+            fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
+        except OSError as exc:
+            return [f"{folder}: cannot open the folder ({exc.strerror or exc})"]
+        try:
+            problems = _check_set(folder, fd)
+            if not problems or _same_folder(folder, fd):
+                return problems
+        finally:
+            os.close(fd)
+    return problems
+
+
+def _same_folder(folder: Path, fd: int) -> bool:
+    """True when ``folder`` still names the folder open as ``fd`` (no swap meanwhile)."""
     try:
-        manifest = json.loads((folder / MANIFEST).read_text(encoding="utf-8"))
+        now, held = os.stat(folder), os.fstat(fd)
+    except OSError:
+        return False
+    return (now.st_dev, now.st_ino) == (held.st_dev, held.st_ino)
+
+
+def _check_set(folder: Path, fd: int) -> list[str]:
+    try:
+        with open(MANIFEST, "rb", opener=_opener(fd)) as handle:
+            manifest = json.loads(handle.read())
         listed: dict[str, str] = dict(manifest["files"])
     except (OSError, ValueError, KeyError, TypeError) as exc:
         return [f"{folder / MANIFEST}: missing or unreadable ({exc})"]
     problems = []
-    present = {p.name for p in folder.iterdir()} - {MANIFEST}
+    present = set(os.listdir(fd)) - {MANIFEST}
     for name in sorted(present ^ set(listed)):
         problems.append(f"{name}: {'not in the manifest' if name in present else 'missing'}")
     for name in sorted(present & set(listed)):
-        if _sha256_file(folder / name) != listed[name]:
+        try:
+            digest = _sha256_file(Path(name), opener=_opener(fd))
+        except OSError:
+            digest = None
+        if digest != listed[name]:
             problems.append(f"{name}: sha256 differs from the manifest")
     outside = manifest.get("junit")
     if isinstance(outside, dict):
@@ -238,15 +279,20 @@ def verify_set(out_dir: str | Path) -> list[str]:
     return problems
 
 
+def _opener(fd: int) -> Callable[[str, int], int]:
+    """An ``open(..., opener=)`` that opens names relative to the folder ``fd``."""
+    return lambda name, flags: os.open(name, flags, dir_fd=fd)
+
+
 def per_file_folder(shown: str) -> str:
     """The sub-folder name `gate check-files` uses for a table shown as ``shown``."""
     safe = "".join(ch if ch.isalnum() or ch in "._-" else "_" for ch in shown)
     return safe + PER_FILE_SUFFIX
 
 
-def _sha256_file(path: Path) -> str:
+def _sha256_file(path: Path, opener: Callable[[str, int], int] | None = None) -> str:
     digest = hashlib.sha256()
-    with open(path, "rb") as handle:
+    with open(path, "rb", opener=opener) as handle:
         for block in iter(lambda: handle.read(1 << 20), b""):
             digest.update(block)
     return digest.hexdigest()

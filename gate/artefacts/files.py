@@ -114,11 +114,12 @@ def fsync_folder(folder: Path) -> None:
 
 
 @contextmanager
-def folder_locks(folders: Iterable[Path]) -> Iterator[None]:
+def folder_locks(folders: Iterable[Path], *, shared: bool = False) -> Iterator[None]:
     """Hold an exclusive ``flock`` on each folder (in a fixed order, so two runs never deadlock).
 
     The lock is on the folder itself, so no lock file is left behind; the kernel releases it
-    when the process ends, also on kill -9. Where a filesystem cannot lock a folder (e.g. some
+    when the process ends, also on kill -9. ``shared`` takes a reader's lock, which waits for
+    writers' commits to finish. Where a filesystem cannot lock a folder (e.g. some
     network filesystems) the run proceeds unlocked.
     """
     opened: dict[tuple[int, int], int] = {}
@@ -132,7 +133,7 @@ def folder_locks(folders: Iterable[Path]) -> Iterator[None]:
                 opened[key] = fd
         for key in sorted(opened):
             try:
-                fcntl.flock(opened[key], fcntl.LOCK_EX)
+                fcntl.flock(opened[key], fcntl.LOCK_SH if shared else fcntl.LOCK_EX)
             except OSError as exc:
                 if exc.errno not in (errno.EBADF, errno.ENOLCK, errno.EOPNOTSUPP, errno.EINVAL):
                     raise
