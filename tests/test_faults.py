@@ -14,6 +14,7 @@ from __future__ import annotations
 import json
 import os
 import random
+import select
 import signal
 import stat
 import subprocess
@@ -264,21 +265,31 @@ def test_kill_9_at_random_points_never_leaves_a_mixed_set(verdict: Verdict,
                                "full_matrices": True}
     write_check_outputs(replace(verdict, label="run-0"), out, **options)
     rng = random.Random(1009)
-    # One set takes ~0.45 s on a loaded 2-core machine: delays up to 1.3 s land before, inside
-    # and after commits. Seven kills bound the loop to about 5 s.
+    # A child reports each finished set on a pipe; the parent waits for a seeded random number
+    # of them (0 or 1, so the loop surely progresses however loaded the machine is), then kills
+    # it after a further seeded random delay (one set takes ~0.45 s on a loaded 2-core machine,
+    # so kills land before, inside and after commits). Seven kills: about 5 s.
     kills, interrupted, labels = 0, 0, set()
     while kills < 7:
+        done, report = os.pipe()
         pid = os.fork()
         if pid == 0:  # the child: write until killed
             try:
+                os.close(done)
                 for i in range(10_000):
                     write_check_outputs(replace(verdict, label=f"kill-{kills}-{i}"), out,
                                         **options)
+                    os.write(report, b".")
             finally:
                 os._exit(0)
-        time.sleep(rng.uniform(0.1, 1.3))
+        os.close(report)
+        for _ in range(rng.choice([0, 1])):
+            assert select.select([done], [], [], 120)[0], "the child wrote no set in 120 s"
+            os.read(done, 1)
+        time.sleep(rng.uniform(0.0, 0.6))
         os.kill(pid, signal.SIGKILL)
         os.waitpid(pid, 0)
+        os.close(done)
         kills += 1
         interrupted += any(STAGE_MARK in p.name for p in tmp_path.iterdir())
         labels.add(assert_whole(out, leftovers_ok=True))
