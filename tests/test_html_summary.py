@@ -223,7 +223,8 @@ def test_check_writes_summary_next_to_verdict(tmp_path: Path, run_cli: Any,
     table = write_table(make_docks_frame(), "docks.parquet")
     result = run_cli(["check", table, "--out", tmp_path / "out"])
     assert result.code == 1
-    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["summary.html",
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["manifest.json",
+                                                                     "summary.html",
                                                                      "verdict.json"]
     page = (tmp_path / "out" / "summary.html").read_text(encoding="utf-8")
     assert "docks.parquet" in page and "FAIL" in page

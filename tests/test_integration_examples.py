@@ -82,11 +82,11 @@ def test_hook_entry_runs_on_tiny_tables(tmp_path: Path) -> None:
     passed = run_hook(tmp_path, good)
     assert passed.returncode == 0, passed.stderr
     assert "PASS" in passed.stdout
-    assert (tmp_path / "out" / "good.parquet" / "verdict.json").exists()
+    assert (tmp_path / "out" / "good.parquet.gate" / "verdict.json").exists()
     both = run_hook(tmp_path, good, bad)
     assert both.returncode == 1
     assert "FAIL  bad.csv" in both.stdout
-    assert (tmp_path / "out" / "bad.csv" / "verdict.json").exists()
+    assert (tmp_path / "out" / "bad.csv.gate" / "verdict.json").exists()
     missing = run_hook(tmp_path, good, tmp_path / "gone.parquet")
     assert missing.returncode == 2
     assert "gone.parquet" in missing.stderr and "Traceback" not in missing.stderr

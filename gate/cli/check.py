@@ -39,7 +39,7 @@ def add_commands(commands: Any) -> None:
 
     files = commands.add_parser(
         "check-files", help="check several tables (the commit-hook entry); exit = the worst",
-        description="Check each FILE against one policy, writing DIR/<file>/verdict.json and "
+        description="Check each FILE against one policy, writing DIR/<file>.gate/verdict.json and "
         "summary.html. Exit 0 if all pass or warn, 1 if any fails, 2 if any is unusable.")
     files.add_argument("files", metavar="FILE", nargs="*",
                        help="tables (.parquet, .csv, .feather/.arrow)")
@@ -52,19 +52,20 @@ def add_commands(commands: Any) -> None:
 
 def _run_check(args: argparse.Namespace) -> int:
     from gate.api import check
-    from gate.artefacts.outputs import write_check_outputs
+    from gate.artefacts.outputs import plan_outputs, write_check_outputs
     from gate.artefacts.terminal import summary_lines
     from gate.stats.progress import terminal_progress
 
     if args.scheduler and args.engine != "dask":
         raise GateError("--scheduler needs --engine dask; add --engine dask")
+    outputs = {"junit": getattr(args, "junit", None), "full_matrices": args.full_matrices,
+               "audit_log": getattr(args, "audit_log", None), "inputs": (args.table, args.policy)}
+    plan_outputs(Path(args.out), **outputs)  # every output path checked before the long pass
     _preload_html_writer()
     verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
                     progress=None if args.quiet else terminal_progress)
-    written = write_check_outputs(verdict, Path(args.out), junit=getattr(args, "junit", None),
-                                  audit_log=getattr(args, "audit_log", None),
-                                  full_matrices=args.full_matrices)
+    written = write_check_outputs(verdict, Path(args.out), **outputs)
     if getattr(args, "format", "text") == "json":
         from gate.artefacts.verdict_json import verdict_json
 
@@ -102,7 +103,7 @@ def _preload_html_writer() -> None:
 
 def _run_check_files(args: argparse.Namespace) -> int:
     from gate.api import check
-    from gate.artefacts.outputs import write_check_outputs
+    from gate.artefacts.outputs import per_file_folder, plan_outputs, write_check_outputs
     from gate.policy.models import load_policy
 
     policy = load_policy(args.policy)  # a bad policy is one error for every file: exit 2 now
@@ -111,13 +112,15 @@ def _run_check_files(args: argparse.Namespace) -> int:
     for name in args.files:
         path = Path(name).resolve()
         shown = path.relative_to(Path.cwd()) if path.is_relative_to(Path.cwd()) else path.name
-        folder = "".join(ch if ch.isalnum() or ch in "._-" else "_" for ch in str(shown))
+        folder = per_file_folder(str(shown))  # <file>.gate: never read back as a table
         while folder in used:
-            folder += "_"
+            folder = folder.removesuffix(".gate") + "_.gate"
         used.add(folder)
         try:
+            plan_outputs(Path(args.out) / folder, inputs=(name, args.policy))
             verdict = check(name, policy, label=args.label)
-            written = write_check_outputs(verdict, Path(args.out) / folder)
+            written = write_check_outputs(verdict, Path(args.out) / folder,
+                                          inputs=(name, args.policy))
         except GateError as exc:  # this file is unusable; report it and check the others
             print(f"gate: error: {exc}", file=sys.stderr)
             worst = max(worst, ExitCode.BAD_INPUT)

@@ -350,6 +350,9 @@ def open_path(path: Path) -> TableSource:
     if not path.exists():
         raise TableError(f"{path}: table file not found; check the path")
     if path.is_dir():
+        if path.suffix == ".gate":
+            raise TableError(f"{path}: is an output folder of `gate check-files` (<file>.gate), "
+                             "not a table; pass the table file itself")
         return ParquetSource(path)
     kind = SUFFIXES.get(path.suffix.lower())
     if kind == "parquet":
