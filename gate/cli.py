@@ -49,6 +49,9 @@ def _add_table_arguments(command: argparse.ArgumentParser) -> None:
                          help="policy YAML (default: the packaged default policy)")
     command.add_argument("--chunk-rows", metavar="N", type=int,
                          help="rows per chunk when streaming (default: sized from the width)")
+    command.add_argument("--csv-delimiter", metavar="CHAR",
+                         help="a CSV table's field delimiter: one character, or 'tab' "
+                         "(default: ',')")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -153,7 +156,8 @@ def _run_check(args: argparse.Namespace) -> int:
     _preload_html_writer()
     verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
-                    progress=None if args.quiet else terminal_progress)
+                    progress=None if args.quiet else terminal_progress,
+                    csv_delimiter=args.csv_delimiter)
     written = write_check_outputs(verdict, Path(args.out), junit=getattr(args, "junit", None),
                                   audit_log=getattr(args, "audit_log", None),
                                   full_matrices=args.full_matrices)
@@ -313,7 +317,8 @@ def _run_suggest(args: argparse.Namespace) -> int:
     policy = load_policy(args.policy)
     keep = [k.strip() for k in args.keep.split(",") if k.strip()]
     prefer = read_preference(args.prefer) if args.prefer else None
-    verdict = check(args.table, policy, chunk_rows=args.chunk_rows)
+    verdict = check(args.table, policy, chunk_rows=args.chunk_rows,
+                    csv_delimiter=args.csv_delimiter)
     result = suggest(verdict, keep=keep, prefer=prefer, method=args.method)
     if args.format == "json":
         sys.stdout.write(json.dumps(result.to_dict(), indent=2, allow_nan=False) + "\n")
