@@ -31,7 +31,7 @@ from gate.stats.routing import plan_exact_pass
 def check(table: Any, policy: Policy | str | Path | None = None, *, label: str | None = None,
           today: dt.date | None = None, chunk_rows: int | None = None,
           engine: Literal["local", "dask"] | None = None, scheduler: Any = None,
-          progress: ProgressFactory | None = None) -> Verdict:
+          progress: ProgressFactory | None = None, csv_delimiter: str | None = None) -> Verdict:
     """Check a feature table against a policy.
 
     Parameters
@@ -47,9 +47,10 @@ def check(table: Any, policy: Policy | str | Path | None = None, *, label: str |
     scheduler : with the Dask engine, a scheduler address or a ``distributed.Client``
         (default: the current client, else a local cluster of 2 workers)
     progress : builds a row counter per pass (the CLI's progress line); None for silence
+    csv_delimiter : a CSV file's field delimiter, one character or "tab" (default: ",")
     """
     policy = policy if isinstance(policy, Policy) else load_policy(policy)
-    source = open_table(table)
+    source = open_table(table, csv_delimiter=csv_delimiter, categorical=policy.columns.categorical)
     if policy.segments is not None:
         return _check_segments(source, policy, label=label, today=today, chunk_rows=chunk_rows,
                                progress=progress)

@@ -58,3 +58,27 @@ class GateFailed(Exception):
     def __init__(self, verdict: Verdict, message: str) -> None:
         self.verdict = verdict
         super().__init__(message)
+
+
+_ESCAPES = {"\n": "\\n", "\t": "\\t", "\r": "\\r"}
+
+
+def shown(value: object, limit: int = 200) -> str:
+    """A user-supplied value (column name, cell, key) made safe to echo in a one-line message.
+
+    Characters below 0x20, 0x7f and 0x80-0x9f are escaped (``\\n``, ``\\t``, ``\\r``, else
+    ``\\xNN``) so a value cannot forge lines or send terminal escape sequences; the text is cut
+    at ``limit`` characters with "…" appended. No quotes are added (callers quote as they like).
+    """
+    text = value if isinstance(value, str) else str(value)
+    cut = len(text) > limit
+    if cut:
+        text = text[:limit]
+    out = []
+    for char in text:
+        code = ord(char)
+        if code < 0x20 or code == 0x7F or 0x80 <= code <= 0x9F:
+            out.append(_ESCAPES.get(char, f"\\x{code:02x}"))
+        else:
+            out.append(char)
+    return "".join(out) + ("…" if cut else "")

@@ -78,6 +78,8 @@ def special_kind(path: Path, *, folder: bool = False) -> str | None:
         return None
     except NotADirectoryError:
         return "below a file, not a folder"
+    except PermissionError:
+        return "not reachable (permission denied on a folder of its path)"
     if folder and stat.S_ISDIR(mode):
         return None
     if not folder and stat.S_ISREG(mode):

@@ -13,3 +13,6 @@ def add_table_arguments(command: argparse.ArgumentParser) -> None:
                          help="policy YAML (default: the packaged default policy)")
     command.add_argument("--chunk-rows", metavar="N", type=int,
                          help="rows per chunk when streaming (default: sized from the width)")
+    command.add_argument("--csv-delimiter", metavar="CHAR",
+                         help="a CSV table's field delimiter: one character, or 'tab' "
+                         "(default: ',')")

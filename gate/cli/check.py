@@ -64,7 +64,8 @@ def _run_check(args: argparse.Namespace) -> int:
     _preload_html_writer()
     verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
-                    progress=None if args.quiet else terminal_progress)
+                    progress=None if args.quiet else terminal_progress,
+                    csv_delimiter=args.csv_delimiter)
     written = write_check_outputs(verdict, Path(args.out), **outputs)
     if getattr(args, "format", "text") == "json":
         from gate.artefacts.verdict_json import verdict_json

@@ -53,7 +53,8 @@ def _run_suggest(args: argparse.Namespace) -> int:
     policy = load_policy(args.policy)
     keep = [k.strip() for k in args.keep.split(",") if k.strip()]
     prefer = read_preference(args.prefer) if args.prefer else None
-    verdict = check(args.table, policy, chunk_rows=args.chunk_rows)
+    verdict = check(args.table, policy, chunk_rows=args.chunk_rows,
+                    csv_delimiter=args.csv_delimiter)
     result = suggest(verdict, keep=keep, prefer=prefer, method=args.method)
     if args.format == "json":
         sys.stdout.write(json.dumps(result.to_dict(), indent=2, allow_nan=False) + "\n")

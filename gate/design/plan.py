@@ -21,7 +21,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 from numpy.typing import NDArray
 
-from gate.errors import DesignError, TableError
+from gate.errors import DesignError, TableError, shown
 from gate.numerics.kernels import FloatArray
 from gate.policy.models import Policy
 from gate.read.sources import DEFAULT_CHUNK_ROWS, TableSource
@@ -158,12 +158,19 @@ def plan_design(source: TableSource, policy: Policy, *,
         and not any(fnmatch.fnmatchcase(n, p) for p in spec.exclude)
         and n != weight
     ]
+    # Binary, list and struct values are neither numbers nor levels: exclusion is the only fix.
+    nested = [n for n in selected if columns[n].kind == "other"]
+    if nested:
+        names_ = ", ".join(f"'{shown(n)}' ({columns[n].type})" for n in nested[:5])
+        raise TableError(f"{source.name}: column{'s' if len(nested) > 1 else ''} {names_} "
+                         "cannot be a feature or a categorical (binary and nested values are "
+                         "neither numbers nor levels); add to columns.exclude")
     unusable = [n for n in selected
-                if columns[n].kind in ("datetime", "other") and n not in spec.categorical]
+                if columns[n].kind == "datetime" and n not in spec.categorical]
     if unusable:
-        shown = ", ".join(f"'{n}' ({columns[n].type})" for n in unusable[:5])
-        raise TableError(f"{source.name}: column{'s' if len(unusable) > 1 else ''} {shown} "
-                         "cannot be a feature (dates and nested values have no linear meaning); "
+        names_ = ", ".join(f"'{shown(n)}' ({columns[n].type})" for n in unusable[:5])
+        raise TableError(f"{source.name}: column{'s' if len(unusable) > 1 else ''} {names_} "
+                         "cannot be a feature (dates have no linear meaning); "
                          "add to columns.exclude, or list under columns.categorical")
     if not selected:
         raise DesignError(f"{source.name}: columns.include/exclude select no feature column; "

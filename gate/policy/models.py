@@ -10,6 +10,7 @@ from __future__ import annotations
 import datetime as dt
 import hashlib
 import json
+import stat
 from importlib import resources
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -162,6 +163,9 @@ def load_policy(path: str | Path | None = None) -> Policy:
     """Read and validate a policy file; ``None`` loads the packaged default policy."""
     file = packaged_policy_path() if path is None else Path(path)
     try:
+        if not stat.S_ISREG(file.stat().st_mode):  # never open a FIFO or device: it may block
+            raise PolicyError(f"{file}: not a regular file (a folder, FIFO, device or socket); "
+                              "pass a policy YAML file")
         raw = file.read_bytes()
     except FileNotFoundError:
         raise PolicyError(f"{file}: policy file not found; check the path or omit --policy "
