@@ -35,7 +35,8 @@ FULL_POLICY: dict[str, Any] = {
     "name": "fleet-maintenance",
     "description": "Invented limits for a fleet-maintenance model.",
     "columns": {"include": ["*"], "exclude": ["vehicle_id"], "categorical": ["depot"],
-                "weight": "trip_weight"},
+                "weight": "trip_weight", "target": ["days_to_failure"],
+                "reference": {"depot": "west"}, "max_levels": 50},
     "missing": "drop_rows",
     "limits": {
         "pairwise_correlation": {"max": 0.8, "level": "warn", "method": "pearson"},
@@ -63,7 +64,7 @@ def _model_of(annotation: Any) -> type[BaseModel] | None:
 
 
 def _is_list(annotation: Any) -> bool:
-    return typing.get_origin(annotation) is list
+    return typing.get_origin(annotation) in (list, tuple)
 
 
 def walk_fields(model: type[BaseModel] = Policy, path: tuple[Any, ...] = ()
@@ -89,8 +90,18 @@ def walk_models(model: type[BaseModel] = Policy, path: tuple[Any, ...] = ()
 
 def bad_values(info: Any) -> list[Any]:
     """Values the field must reject: one of the wrong type, and each constraint's boundary."""
-    values: list[Any] = [{"nested": "mapping"}] if _model_of(info.annotation) is None else [42]
+    if _model_of(info.annotation) is not None:
+        values: list[Any] = [42]
+    elif typing.get_origin(info.annotation) is dict:
+        values = [["a", "list"]]
+    else:
+        values = [{"nested": "mapping"}]
     is_int = info.annotation is int
+    if float in (info.annotation, *typing.get_args(info.annotation)):
+        values += [float("inf"), float("nan")]  # limits must be finite (issue 10)
+    if int in (info.annotation, *typing.get_args(info.annotation)) or float in (
+            info.annotation, *typing.get_args(info.annotation)):
+        values.append(True)  # a number is never a boolean (issue 9)
     for meta in info.metadata:
         if isinstance(meta, annotated_types.Gt):
             values.append(meta.gt)
@@ -272,7 +283,9 @@ def test_minimal_policy_gets_the_documented_defaults() -> None:
     assert limits.rank_deficiency.level == "fail"
     assert limits.rank_deficiency.tolerance is None
     assert policy.missing == "drop_rows"
-    assert policy.columns.include == ["*"]
+    assert policy.columns.include == ("*",)
+    assert policy.columns.target == () and policy.columns.reference == {}
+    assert policy.columns.max_levels == 50
 
 
 def test_models_are_frozen() -> None:
