@@ -13,7 +13,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-from gate.errors import GateError
+from gate.errors import GateError, shown
 
 EXIT_INPUT = 2
 EXIT_BUG = 3
@@ -29,7 +29,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return handler(args)
     except GateError as exc:
-        print(f"gate: error: {exc}", file=sys.stderr)
+        print(f"gate: error: {shown(str(exc), None)}", file=sys.stderr)
         return EXIT_INPUT
     except KeyboardInterrupt:
         print("gate: interrupted", file=sys.stderr)
@@ -39,6 +39,17 @@ def main(argv: Sequence[str] | None = None) -> int:
         print("gate: internal error (a bug): please report it with the traceback above",
               file=sys.stderr)
         return EXIT_BUG
+
+
+def _note_default_policy(args: argparse.Namespace) -> None:
+    """Without --policy, say which policy applies and what it makes a feature (issue 11)."""
+    if getattr(args, "policy", None) is None:
+        from gate.policy import packaged_policy_path
+
+        print(f"gate: note: no --policy given; the packaged default policy applies "
+              f"({packaged_policy_path()}): every numeric column is a feature (text columns "
+              "become dummies), a target or id column too; name them in columns.target and "
+              "columns.exclude of your own policy (`gate policy init`)", file=sys.stderr)
 
 
 def _add_table_arguments(command: argparse.ArgumentParser) -> None:
@@ -151,6 +162,7 @@ def _run_check(args: argparse.Namespace) -> int:
     if args.scheduler and args.engine != "dask":
         raise GateError("--scheduler needs --engine dask; add --engine dask")
     _preload_html_writer()
+    _note_default_policy(args)
     verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
                     progress=None if args.quiet else terminal_progress)
@@ -311,6 +323,7 @@ def _run_suggest(args: argparse.Namespace) -> int:
     )
 
     policy = load_policy(args.policy)
+    _note_default_policy(args)
     keep = [k.strip() for k in args.keep.split(",") if k.strip()]
     prefer = read_preference(args.prefer) if args.prefer else None
     verdict = check(args.table, policy, chunk_rows=args.chunk_rows)
@@ -343,6 +356,7 @@ def _run_check_files(args: argparse.Namespace) -> int:
     from gate.policy import load_policy
 
     policy = load_policy(args.policy)  # a bad policy is one error for every file: exit 2 now
+    _note_default_policy(args)
     worst = 0
     used: set[str] = set()
     for name in args.files:

@@ -259,7 +259,9 @@ def load_policy(path: str | Path | None = None) -> Policy:
     file = packaged_policy_path() if path is None else Path(path)
     where = shown(str(file))
     try:
-        with open(file, "rb") as handle:
+        # O_NONBLOCK: opening a FIFO nobody writes to must not hang; it is refused below.
+        fd = os.open(file, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))
+        with os.fdopen(fd, "rb") as handle:
             if not stat.S_ISREG(os.fstat(handle.fileno()).st_mode):
                 raise PolicyError(f"{where}: not a regular file; give the path of a policy "
                                   "YAML file")
