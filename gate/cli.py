@@ -42,8 +42,9 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 
 def _note_default_policy(args: argparse.Namespace) -> None:
-    """Without --policy, say which policy applies and what it makes a feature (issue 11)."""
-    if getattr(args, "policy", None) is None:
+    """Without --policy, say which policy applies and what it makes a feature (issue 11).
+    Said once the verdict is written, so an unusable input stays a one-line error."""
+    if getattr(args, "policy", None) is None and not getattr(args, "quiet", False):
         from gate.policy import packaged_policy_path
 
         print(f"gate: note: no --policy given; the packaged default policy applies "
@@ -162,13 +163,13 @@ def _run_check(args: argparse.Namespace) -> int:
     if args.scheduler and args.engine != "dask":
         raise GateError("--scheduler needs --engine dask; add --engine dask")
     _preload_html_writer()
-    _note_default_policy(args)
     verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
                     progress=None if args.quiet else terminal_progress)
     written = write_check_outputs(verdict, Path(args.out), junit=getattr(args, "junit", None),
                                   audit_log=getattr(args, "audit_log", None),
                                   full_matrices=args.full_matrices)
+    _note_default_policy(args)
     if getattr(args, "format", "text") == "json":
         from gate.artefacts.verdict_json import verdict_json
 
@@ -323,7 +324,6 @@ def _run_suggest(args: argparse.Namespace) -> int:
     )
 
     policy = load_policy(args.policy)
-    _note_default_policy(args)
     keep = [k.strip() for k in args.keep.split(",") if k.strip()]
     prefer = read_preference(args.prefer) if args.prefer else None
     verdict = check(args.table, policy, chunk_rows=args.chunk_rows)
@@ -347,6 +347,7 @@ def _run_suggest(args: argparse.Namespace) -> int:
             print(f"  wrote {written} (columns.exclude += {', '.join(result.drops)})")
     elif args.write_policy and args.format != "json":
         print("  nothing to exclude: --write-policy wrote no file")
+    _note_default_policy(args)
     return 0 if result.solved else 1
 
 
@@ -356,7 +357,6 @@ def _run_check_files(args: argparse.Namespace) -> int:
     from gate.policy import load_policy
 
     policy = load_policy(args.policy)  # a bad policy is one error for every file: exit 2 now
-    _note_default_policy(args)
     worst = 0
     used: set[str] = set()
     for name in args.files:
