@@ -127,7 +127,7 @@ def _verdict_from_gram(runner: Engine, source: TableSource, plan: DesignPlan,
                        today: dt.date | None, chunk_rows: int | None,
                        progress: ProgressFactory | None) -> Verdict:
     """Main-pass statistics -> design -> (exact pass if needed) -> diagnostics -> verdict."""
-    design = finish_design(plan, full_gram.mean, counts)
+    design = finish_design(plan, full_gram.mean, full_gram.rows, counts)
     gram = full_gram.select(np.asarray(design.selection, dtype=np.intp))
     _check_rows(design, gram.rows, gram.weight_sum, source.name)
     exact = plan_exact_pass(gram, tolerance=policy.limits.rank_deficiency.tolerance)

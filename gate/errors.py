@@ -15,6 +15,8 @@ already catch ValueError keep working. Messages are one line: what, where, and t
 
 from __future__ import annotations
 
+import reprlib
+import unicodedata
 from enum import IntEnum
 from typing import TYPE_CHECKING
 
@@ -30,6 +32,48 @@ class ExitCode(IntEnum):
     BAD_INPUT = 2  # unusable input: one line on stderr, no traceback
     INTERNAL = 3  # a bug: the traceback is printed
     INTERRUPTED = 130  # Ctrl-C (128 + SIGINT, the shell's convention)
+
+
+#: Longest echo of a user-supplied value in a message (longer ones end in "…").
+SHOWN_LIMIT = 200
+_NAMED_ESCAPES = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
+_REPR = reprlib.Repr()
+_REPR.maxlevel, _REPR.maxlist, _REPR.maxtuple, _REPR.maxdict = 3, 12, 12, 12
+_REPR.maxstring = _REPR.maxother = SHOWN_LIMIT
+
+
+def shown(value: object, limit: int | None = SHOWN_LIMIT, *, quote: bool = False) -> str:
+    """A user-supplied value made safe to echo in a one-line message.
+
+    Text is used as it is; anything else as a bounded ``repr`` (nested containers abbreviated).
+    Control and format characters (newline, ESC, bidi overrides, line separators) are written as
+    escapes such as ``\\n``, ``\\x1b`` or ``\\u202e``, so a value can neither break the line nor
+    drive the terminal. The result is cut to ``limit`` characters, the last being "…" (``None``:
+    no cut). ``quote=True`` wraps text in single quotes, outside the limit.
+    """
+    text = value if isinstance(value, str) else _REPR.repr(value)
+    pieces: list[str] = []
+    size = 0
+    cut = False
+    for ch in text:
+        if unicodedata.category(ch) in ("Cc", "Cf", "Zl", "Zp"):
+            code = ord(ch)
+            piece = _NAMED_ESCAPES.get(ch) or (f"\\x{code:02x}" if code < 0x100 else
+                                              f"\\u{code:04x}" if code < 0x10000 else
+                                              f"\\U{code:08x}")
+        else:
+            piece = ch
+        if limit is not None and size + len(piece) > limit:
+            cut = True
+            break
+        pieces.append(piece)
+        size += len(piece)
+    if cut and limit is not None:
+        while pieces and size + 1 > limit:
+            size -= len(pieces.pop())
+        pieces.append("…")
+    result = "".join(pieces)
+    return f"'{result}'" if quote and isinstance(value, str) else result
 
 
 class GateError(Exception):
@@ -59,26 +103,3 @@ class GateFailed(Exception):
         self.verdict = verdict
         super().__init__(message)
 
-
-_ESCAPES = {"\n": "\\n", "\t": "\\t", "\r": "\\r"}
-
-
-def shown(value: object, limit: int = 200) -> str:
-    """A user-supplied value (column name, cell, key) made safe to echo in a one-line message.
-
-    Characters below 0x20, 0x7f and 0x80-0x9f are escaped (``\\n``, ``\\t``, ``\\r``, else
-    ``\\xNN``) so a value cannot forge lines or send terminal escape sequences; the text is cut
-    at ``limit`` characters with "…" appended. No quotes are added (callers quote as they like).
-    """
-    text = value if isinstance(value, str) else str(value)
-    cut = len(text) > limit
-    if cut:
-        text = text[:limit]
-    out = []
-    for char in text:
-        code = ord(char)
-        if code < 0x20 or code == 0x7F or 0x80 <= code <= 0x9F:
-            out.append(_ESCAPES.get(char, f"\\x{code:02x}"))
-        else:
-            out.append(char)
-    return "".join(out) + ("…" if cut else "")

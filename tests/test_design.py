@@ -8,12 +8,12 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pytest
-
-import gate
 from gate.design.plan import MAX_LEVELS, encode_block, finish_design, plan_design
-from gate.errors import DesignError, TableError
 from gate.judge.verdict import Verdict
 from gate.policy.models import Policy
+
+import gate
+from gate.errors import DesignError, TableError
 from gate.read.sources import ArrowTableSource, from_dataframe
 from gate.stats.accumulators import CentredGram
 from gate.stats.local import main_pass
@@ -53,14 +53,22 @@ def test_weight_column_is_never_a_feature() -> None:
     assert verdict.design.weight == "trip_weight"
 
 
-def test_string_columns_become_dummies_with_first_sorted_level_as_reference() -> None:
-    verdict = run(fleet(), columns={"exclude": ["vehicle_id"]})
-    assert "depot=north" in verdict.features and "depot=west" in verdict.features
-    assert "depot=east" not in verdict.features  # 'east' sorts first: the reference
+def test_string_columns_become_dummies_with_most_frequent_level_as_reference() -> None:
+    frame = fleet()
+    counts = frame["depot"].value_counts()  # pandas counts the levels independently
+    top = counts.idxmax()
+    assert (counts == counts.max()).sum() == 1  # the seed gives one clear winner
+    verdict = run(frame, columns={"exclude": ["vehicle_id"]})
+    others = sorted(level for level in counts.index if level != top)
     (group,) = verdict.design.groups
-    assert group.column == "depot" and group.reference == "east"
-    assert group.levels == ("north", "west")
-    assert [verdict.features[k] for k in group.indices] == ["depot=north", "depot=west"]
+    assert group.column == "depot" and group.reference == top
+    assert f"depot={top}" not in verdict.features
+    assert group.levels == tuple(others)
+    assert [verdict.features[k] for k in group.indices] == [f"depot={v}" for v in others]
+    assert group.reference_reason == f"most frequent level ({counts.max()} of 60 used rows)"
+    document = verdict.to_dict()
+    assert document["groups"][0]["reference"] == top
+    assert document["groups"][0]["reference_reason"].startswith("most frequent level")
 
 
 def test_boolean_columns_are_numeric_zero_one() -> None:
@@ -98,6 +106,59 @@ def test_too_many_levels_is_refused() -> None:
     assert "plate" in str(caught.value) and str(MAX_LEVELS) in str(caught.value)
 
 
+def _plates(rows: int, levels: int, seed: int = 5) -> pd.DataFrame:
+    # Invented: a fleet table with a licence-plate-like text column of `levels` values.
+    rng = np.random.default_rng(seed)
+    return pd.DataFrame({"odometer_km": rng.uniform(1e4, 2e5, rows),
+                         "engine_hours": rng.uniform(100, 9000, rows),
+                         "plate": [f"P{k % levels:05d}" for k in range(rows)]})
+
+
+def test_default_level_limit_is_50() -> None:
+    # columns.max_levels defaults to 50: common practice, no source.
+    assert MAX_LEVELS == 50
+    assert run(_plates(600, 50)).design.groups[0].column == "plate"  # 50 levels: accepted
+    with pytest.raises(TableError) as caught:
+        run(_plates(600, 51))  # 51: refused
+    message = str(caught.value)
+    assert "'plate' looks like an identifier (51 distinct values" in message
+    assert "exclude it, or declare it categorical with a higher level limit" in message
+    assert "\n" not in message
+
+
+def test_text_column_with_many_levels_is_never_hundreds_of_dummies() -> None:
+    # issue 11: 50 to 10,000 levels must not silently become dummies.
+    for levels in (60, 600, 10_000):
+        with pytest.raises(TableError, match="looks like an identifier"):
+            run(_plates(10_000, levels))
+
+
+def test_declared_categorical_may_raise_the_level_limit() -> None:
+    frame = _plates(1_200, 120)
+    with pytest.raises(TableError) as caught:
+        run(frame, columns={"categorical": ["plate"]})
+    message = str(caught.value)
+    assert "categorical column 'plate' has 120 levels, more than columns.max_levels = 50" \
+        in message and "raise columns.max_levels" in message
+    verdict = run(frame, columns={"categorical": ["plate"], "max_levels": 200})
+    assert len(verdict.design.groups[0].levels) == 119
+
+
+def test_almost_all_distinct_text_is_an_identifier() -> None:
+    # Rule (common practice, no source): from 20 used rows on, a text column with a distinct
+    # value in at least 90% of them is an identifier, whatever max_levels allows.
+    frame = _plates(40, 36)  # 36 of 40 rows distinct = 90%
+    with pytest.raises(DesignError) as caught:
+        run(frame, columns={"max_levels": 100})
+    assert "'plate' looks like an identifier (36 distinct values in 40 used rows)" \
+        in str(caught.value)
+    assert run(_plates(40, 35), columns={"max_levels": 100}).design.groups  # 87.5%: kept
+    # Listed in columns.categorical: the user said it is a category.
+    assert run(frame, columns={"max_levels": 100, "categorical": ["plate"]}).design.groups
+    # Fewer than 20 used rows prove nothing.
+    assert run(_plates(19, 19), columns={"max_levels": 100}).design.groups
+
+
 def test_missing_values_dropped_and_counted_per_column() -> None:
     frame = fleet()
     frame.loc[[0, 1, 2], "tyre_wear"] = np.nan
@@ -120,13 +181,92 @@ def test_level_seen_only_in_dropped_rows_gets_no_dummy() -> None:
     assert verdict.diagnostics.dependencies == ()  # no spurious constant dummy
 
 
-def test_reference_is_first_level_present_among_used_rows() -> None:
-    frame = fleet()
-    east = frame["depot"] == "east"
-    frame.loc[east, "tyre_wear"] = np.nan  # every 'east' row is dropped
-    verdict = run(frame, columns={"exclude": ["vehicle_id"]})
-    (group,) = verdict.design.groups
-    assert group.reference == "north" and group.levels == ("west",)
+def _depots(counts: dict[str, int], seed: int = 6) -> pd.DataFrame:
+    rng = np.random.default_rng(seed)
+    depot = np.repeat(list(counts), list(counts.values()))
+    rows = depot.size
+    return pd.DataFrame({"odometer_km": rng.uniform(1e4, 2e5, rows),
+                         "tyre_wear": rng.uniform(0, 1, rows),
+                         "depot": rng.permutation(depot)})
+
+
+def test_reference_is_the_most_frequent_level_among_used_rows() -> None:
+    frame = _depots({"east": 30, "north": 12, "west": 18})
+    verdict = run(frame)
+    assert verdict.design.groups[0].reference == "east"
+    frame.loc[frame["depot"] == "east", "tyre_wear"] = np.nan  # every 'east' row is dropped
+    (group,) = run(frame).design.groups
+    assert group.reference == "west" and group.levels == ("north",)
+    assert group.reference_reason == "most frequent level (18 of 30 used rows)"
+
+
+def test_reference_ties_go_to_the_first_in_sort_order() -> None:
+    (group,) = run(_depots({"west": 20, "north": 20, "east": 15})).design.groups
+    assert group.reference == "north"
+    assert group.reference_reason == ("most frequent level (20 of 55 used rows); tied with "
+                                      "'west': first in sort order")
+
+
+def test_weighted_reference_is_the_largest_weight_share() -> None:
+    frame = _depots({"east": 30, "north": 12, "west": 18})
+    frame["trip_weight"] = np.where(frame["depot"] == "north", 10.0, 1.0)  # 120 of 168
+    (group,) = run(frame, columns={"weight": "trip_weight"}).design.groups
+    assert group.reference == "north"
+    assert group.reference_reason == "most frequent level (71.4% of the weight of the used rows)"
+
+
+def test_reference_override() -> None:
+    frame = _depots({"east": 30, "north": 12, "west": 18})
+    (group,) = run(frame, columns={"reference": {"depot": "north"}}).design.groups
+    assert group.reference == "north" and group.levels == ("east", "west")
+    assert group.reference_reason == "set by columns.reference"
+
+
+def test_reference_override_with_an_unknown_level_names_the_levels_seen() -> None:
+    frame = _depots({"east": 30, "north": 12, "west": 18})
+    with pytest.raises(TableError) as caught:
+        run(frame, columns={"reference": {"depot": "south"}})
+    assert str(caught.value) == ("<DataFrame>: columns.reference sets level 'south' for column "
+                                 "'depot', which has no such value; levels seen: east, north, "
+                                 "west")
+    with pytest.raises(TableError, match="columns.reference names 'odometer_km', which is not "
+                                         "a categorical feature column"):
+        run(frame, columns={"reference": {"odometer_km": "1"}})
+    frame.loc[frame["depot"] == "north", "tyre_wear"] = np.nan
+    with pytest.raises(DesignError, match="no used row has it"):
+        run(frame, columns={"reference": {"depot": "north"}})
+
+
+def test_reference_override_reads_numeric_levels_as_text() -> None:
+    frame = fleet().assign(axle_count=np.tile([2, 3, 10], 20))
+    verdict = run(frame, columns={"exclude": ["vehicle_id", "depot"],
+                                  "categorical": ["axle_count"], "reference": {"axle_count": 10}})
+    assert verdict.design.groups[0].reference == "10"
+
+
+def test_changing_the_reference_keeps_gvif_and_other_vifs() -> None:
+    # Fox & Monette (1992): GVIF does not depend on how the group is coded; the other features'
+    # VIFs depend only on the span of the dummies. Checked against statsmodels'
+    # variance_inflation_factor on a design built with pandas for each reference.
+    from statsmodels.stats.outliers_influence import variance_inflation_factor
+    from statsmodels.tools import add_constant
+
+    frame = fleet(rows=300).drop(columns=["vehicle_id", "trip_weight"])
+    frame["odometer_km"] += 4e4 * (frame["depot"] == "west")  # the group inflates odometer_km
+    base = run(frame)
+    for chosen in ("east", "north", "west"):
+        other = run(frame, columns={"reference": {"depot": chosen}})
+        assert other.diagnostics.groups[0].gvif == pytest.approx(
+            base.diagnostics.groups[0].gvif, rel=1e-10)
+        dummies = pd.get_dummies(frame["depot"], prefix="depot", prefix_sep="=", dtype=float)
+        design = pd.concat([frame.drop(columns="depot").astype(float),
+                            dummies.drop(columns=f"depot={chosen}")], axis=1)
+        exog = add_constant(design.to_numpy())
+        for position, name in enumerate(design.columns):
+            expected = variance_inflation_factor(exog, position + 1)
+            assert other.vif()[name] == pytest.approx(expected, rel=1e-9)
+            if not name.startswith("depot="):
+                assert other.vif()[name] == pytest.approx(base.vif()[name], rel=1e-10)
 
 
 def test_single_level_categorical_adds_no_feature() -> None:
@@ -171,7 +311,8 @@ def test_finish_design_names_and_selection() -> None:
     source = from_dataframe(frame)
     plan = plan_design(source, policy())
     values = np.array([[1.0, 0, 1, 0], [2.0, 1, 0, 0], [3.0, 0, 0, 1], [5.0, 1, 0, 0]])
-    design = finish_design(plan, CentredGram.from_block(values).mean, main_pass(source, plan)[1])
+    gram = CentredGram.from_block(values)
+    design = finish_design(plan, gram.mean, gram.rows, main_pass(source, plan)[1])
     assert design.features == ("load_t", "depot=b", "depot=c")
     assert design.selection == (0, 2, 3)
 
@@ -198,7 +339,8 @@ def test_pyarrow_table_is_accepted() -> None:
 
 
 def test_numeric_codes_sort_by_value_for_the_reference() -> None:
-    # '10' < '2' as text; as codes 2 < 3 < 10, so 2 is the first sorted level (the reference).
+    # '10' < '2' as text; as codes 2 < 3 < 10, so 2 is the first sorted level: with every level
+    # equally frequent, the tie goes to it (the reference).
     frame = fleet().assign(axle_count=np.tile([2, 3, 10], 20),
                            load_class=np.tile([2.5, 10.0, 3.0], 20),
                            depot_code=np.tile(["B7", "A10", "A9"], 20))
@@ -207,3 +349,25 @@ def test_numeric_codes_sort_by_value_for_the_reference() -> None:
     references = {g.column: g.reference for g in verdict.design.groups}
     assert references == {"axle_count": "2", "load_class": "2.5", "depot_code": "A10"}
     assert "axle_count=10" in verdict.features and "axle_count=3" in verdict.features
+
+
+# --- target --------------------------------------------------------------------------------------
+
+def test_target_is_never_a_feature_and_is_named_in_the_verdict() -> None:
+    frame = fleet().assign(days_to_failure=np.arange(60.0))
+    verdict = run(frame, columns={"exclude": ["vehicle_id"], "target": "days_to_failure"})
+    assert "days_to_failure" not in verdict.features
+    assert verdict.to_dict()["target"] == ["days_to_failure"]
+    both = run(frame, columns={"exclude": ["vehicle_id"],
+                               "target": ["days_to_failure", "tyre_wear"]})
+    assert "tyre_wear" not in both.features
+    assert both.to_dict()["target"] == ["days_to_failure", "tyre_wear"]
+    assert run(frame, columns={"exclude": ["vehicle_id"]}).to_dict()["target"] == []
+
+
+def test_target_must_be_a_column_and_not_a_feature_role() -> None:
+    with pytest.raises(TableError, match="columns.target names 'failures', which is not a "
+                                         "column of the table"):
+        run(fleet(), columns={"target": "failures"})
+    with pytest.raises(TableError, match="'depot' is both a target"):
+        run(fleet(), columns={"target": "depot", "categorical": ["depot"]})

@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from gate.cli.arguments import add_table_arguments
+from gate.cli.arguments import add_table_arguments, note_default_policy
 from gate.errors import ExitCode, GateError
 
 
@@ -67,6 +67,7 @@ def _run_check(args: argparse.Namespace) -> int:
                     progress=None if args.quiet else terminal_progress,
                     csv_delimiter=args.csv_delimiter)
     written = write_check_outputs(verdict, Path(args.out), **outputs)
+    note_default_policy(args)
     if getattr(args, "format", "text") == "json":
         from gate.artefacts.verdict_json import verdict_json
 

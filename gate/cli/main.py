@@ -13,7 +13,7 @@ import sys
 import traceback
 from collections.abc import Callable, Sequence
 
-from gate.errors import ExitCode, GateError
+from gate.errors import ExitCode, GateError, shown
 
 #: Exit status when stdout is a pipe the reader closed (`gate diff ... | head -1`): 128 +
 #: SIGPIPE, what a command killed by the signal reports, but quietly and without a traceback.
@@ -34,7 +34,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except BrokenPipeError:
         return _quiet_broken_pipe()
     except GateError as exc:
-        print(f"gate: error: {exc}", file=sys.stderr)
+        print(f"gate: error: {shown(str(exc), None)}", file=sys.stderr)
         return ExitCode.BAD_INPUT
     except KeyboardInterrupt:
         print("gate: interrupted", file=sys.stderr)

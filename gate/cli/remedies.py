@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from gate.cli.arguments import add_table_arguments
+from gate.cli.arguments import add_table_arguments, note_default_policy
 from gate.errors import GateError
 
 
@@ -75,4 +75,5 @@ def _run_suggest(args: argparse.Namespace) -> int:
             print(f"  wrote {written} (columns.exclude += {', '.join(result.drops)})")
     elif args.write_policy and args.format != "json":
         print("  nothing to exclude: --write-policy wrote no file")
+    note_default_policy(args)
     return 0 if result.solved else 1

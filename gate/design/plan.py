@@ -4,9 +4,16 @@
 reads the categorical levels (a cheap pass over only those columns). ``encode_block`` turns one
 chunk of rows into a float block: numeric and boolean columns as they are, categorical columns
 one-hot over *all* levels, rows with missing values dropped (or refused). ``finish_design``
-picks the reference level per categorical (the first sorted level still present among the used
-rows) once the main pass has seen every row, so a level that vanished with the dropped rows
-never becomes a spurious constant column.
+picks the reference level per categorical once the main pass has seen every row: the level named
+in ``columns.reference``, else the most frequent level among the used rows (by weight when the
+policy names a weight column; ties go to the first in sort order). A level that vanished with the
+dropped rows never becomes a spurious constant column.
+
+Text columns are checked for looking like identifiers: more distinct values than
+``columns.max_levels`` (default 50, common practice, no source), or, among at least
+:data:`IDENTIFIER_MIN_ROWS` used rows, a distinct value in at least
+:data:`IDENTIFIER_DISTINCT_SHARE` of them. Either is refused rather than one-hot encoded into
+hundreds of dummies; a column listed in ``columns.categorical`` is held to ``max_levels`` only.
 """
 
 from __future__ import annotations
@@ -23,11 +30,17 @@ from numpy.typing import NDArray
 
 from gate.errors import DesignError, TableError, shown
 from gate.numerics.kernels import FloatArray
-from gate.policy.models import Policy
+from gate.policy.models import DEFAULT_MAX_LEVELS, MAX_LEVELS_CEILING, Policy
 from gate.read.sources import DEFAULT_CHUNK_ROWS, TableSource
 
-#: One-hot encoding a column with more levels than this is almost always a mistake (an id).
-MAX_LEVELS = 500
+#: Default level limit (``columns.max_levels``): one-hot encoding a text column with more levels
+#: is almost always a mistake (an identifier); common practice, no source.
+MAX_LEVELS = DEFAULT_MAX_LEVELS
+#: A text column with a distinct value in at least this share of the used rows looks like an
+#: identifier (common practice, no source) ...
+IDENTIFIER_DISTINCT_SHARE = 0.9
+#: ... judged only from this many used rows on (a handful of rows proves nothing).
+IDENTIFIER_MIN_ROWS = 20
 #: Blocks are sized to about this many bytes, so memory does not grow with the feature count.
 BLOCK_BYTES = 64 * 1024 * 1024
 GLOB_CHARS = set("*?[")
@@ -37,6 +50,8 @@ GLOB_CHARS = set("*?[")
 class Categorical:
     column: str
     levels: tuple[str, ...]  # every level seen, sorted
+    declared: bool = False  # listed in columns.categorical (else a text column taken as one)
+    reference: str | None = None  # columns.reference for this column
 
 
 @dataclass(frozen=True)
@@ -47,6 +62,7 @@ class DesignPlan:
     parts: tuple[str | Categorical, ...]  # selected columns in table order
     weight: str | None
     missing: str
+    target: tuple[str, ...] = ()
 
     @property
     def numeric(self) -> tuple[str, ...]:
@@ -105,6 +121,7 @@ class Group:
     reference: str
     levels: tuple[str, ...]  # levels with a dummy
     indices: tuple[int, ...]  # their positions among the design columns
+    reference_reason: str = ""  # why this level is the reference, in words
 
 
 @dataclass(frozen=True)
@@ -137,26 +154,33 @@ def plan_design(source: TableSource, policy: Policy, *,
     for key, patterns in (("columns.include", spec.include),):
         for pattern in patterns:
             if not GLOB_CHARS & set(pattern) and pattern not in columns:
-                raise TableError(f"{source.name}: {key} names '{pattern}', which is not a "
+                raise TableError(f"{source.name}: {key} names '{shown(pattern)}', which is not a "
                                  f"column of the table; columns are: {_preview(names)}")
-    for name in spec.categorical:
-        if name not in columns:
-            raise TableError(f"{source.name}: columns.categorical names '{name}', which is not "
-                             f"a column of the table; columns are: {_preview(names)}")
+    for key, listed in (("columns.categorical", spec.categorical),
+                        ("columns.target", spec.target)):
+        for name in listed:
+            if name not in columns:
+                raise TableError(f"{source.name}: {key} names '{shown(name)}', which is not a "
+                                 f"column of the table; columns are: {_preview(names)}")
+    for name in spec.target:
+        if name in spec.categorical or name == spec.weight:
+            other = "columns.categorical" if name in spec.categorical else "columns.weight"
+            raise TableError(f"{source.name}: '{shown(name)}' is both a target (columns.target) "
+                             f"and in {other}; a target is never a feature: remove it from one")
     weight = spec.weight
     if weight is not None:
         if weight not in columns:
-            raise TableError(f"{source.name}: columns.weight names '{weight}', which is not a "
+            raise TableError(f"{source.name}: columns.weight names '{shown(weight)}', which is not a "
                              f"column of the table; columns are: {_preview(names)}")
         if columns[weight].kind not in ("numeric", "boolean"):
-            raise TableError(f"{source.name}: weight column '{weight}' has type "
+            raise TableError(f"{source.name}: weight column '{shown(weight)}' has type "
                              f"{columns[weight].type}; weights must be numeric")
 
     selected = [
         n for n in names
         if any(fnmatch.fnmatchcase(n, p) for p in spec.include)
         and not any(fnmatch.fnmatchcase(n, p) for p in spec.exclude)
-        and n != weight
+        and n != weight and n not in spec.target
     ]
     # Binary, list and struct values are neither numbers nor levels: exclusion is the only fix.
     nested = [n for n in selected if columns[n].kind == "other"]
@@ -168,20 +192,35 @@ def plan_design(source: TableSource, policy: Policy, *,
     unusable = [n for n in selected
                 if columns[n].kind == "datetime" and n not in spec.categorical]
     if unusable:
-        names_ = ", ".join(f"'{shown(n)}' ({columns[n].type})" for n in unusable[:5])
-        raise TableError(f"{source.name}: column{'s' if len(unusable) > 1 else ''} {names_} "
-                         "cannot be a feature (dates have no linear meaning); "
+        bad = ", ".join(f"'{shown(n)}' ({columns[n].type})" for n in unusable[:5])
+        raise TableError(f"{source.name}: column{'s' if len(unusable) > 1 else ''} {bad} "
+                         "cannot be a feature (dates and nested values have no linear meaning); "
                          "add to columns.exclude, or list under columns.categorical")
     if not selected:
         raise DesignError(f"{source.name}: columns.include/exclude select no feature column; "
                           f"columns are: {_preview(names)}")
     to_encode = [n for n in selected
                  if n in spec.categorical or columns[n].kind == "categorical"]
-    levels = _sorted_levels(source, (distinct or distinct_values)(source, to_encode))
+    for name in spec.reference:
+        if name not in to_encode:
+            raise TableError(f"{source.name}: columns.reference names '{shown(name)}', which is "
+                             "not a categorical feature column; categorical columns are: "
+                             f"{_preview(to_encode) or '(none)'}")
+    seen = (distinct or distinct_values)(source, to_encode)
+    for name, values in seen.items():
+        check_level_count(source.name, name, len(values), spec.max_levels,
+                          declared=name in spec.categorical)
+    levels = {n: tuple(sorted(values, key=_level_order(values))) for n, values in seen.items()}
+    for name, level in spec.reference.items():
+        if level not in levels[name]:
+            raise TableError(f"{source.name}: columns.reference sets level '{shown(level)}' for "
+                             f"column '{shown(name)}', which has no such value; levels seen: "
+                             f"{_preview(levels[name])}")
     parts: list[str | Categorical] = [
-        Categorical(n, levels[n]) if n in levels else n for n in selected
+        Categorical(n, levels[n], n in spec.categorical, spec.reference.get(n))
+        if n in levels else n for n in selected
     ]
-    return DesignPlan(source.name, tuple(parts), weight, policy.missing)
+    return DesignPlan(source.name, tuple(parts), weight, policy.missing, spec.target)
 
 
 #: Rows per chunk of the levels pass (only the categorical columns are read).
@@ -190,30 +229,37 @@ LEVELS_CHUNK_ROWS = 1 << 20
 
 def distinct_values(source: TableSource, names: list[str]) -> dict[str, set[str]]:
     """Distinct non-missing values (as text) of the named columns, in one cheap pass that reads
-    only those columns."""
+    only those columns. A column stops collecting past ``MAX_LEVELS_CEILING`` values (it is
+    refused by :func:`check_level_count` whatever the policy's limit); the pass stops when every
+    column has."""
     seen: dict[str, set[str]] = {n: set() for n in names}
     if not names:
         return seen
     for chunk in source.chunks(names, chunk_rows=LEVELS_CHUNK_ROWS):
-        for name in names:
+        open_names = [n for n in names if len(seen[n]) <= MAX_LEVELS_CEILING]
+        if not open_names:
+            break
+        for name in open_names:
             values = pc.unique(_as_text(chunk.column(name)))
             seen[name].update(v for v in values.to_pylist() if v is not None)
-            check_level_count(source.name, name, len(seen[name]))
     return seen
 
 
-def check_level_count(table: str, name: str, count: int) -> None:
-    if count > MAX_LEVELS:
-        raise TableError(f"{table}: categorical column '{name}' has more than "
-                         f"{MAX_LEVELS} distinct values; one-hot encoding it would add "
-                         "that many features: exclude it or group its levels")
-
-
-def _sorted_levels(source: TableSource, seen: dict[str, set[str]]
-                   ) -> dict[str, tuple[str, ...]]:
-    for name, values in seen.items():
-        check_level_count(source.name, name, len(values))
-    return {n: tuple(sorted(values, key=_level_order(values))) for n, values in seen.items()}
+def check_level_count(table: str, name: str, count: int, limit: int = MAX_LEVELS, *,
+                      declared: bool = False) -> None:
+    """Refuse a categorical column with more than ``limit`` levels (``columns.max_levels``)."""
+    if count <= limit:
+        return
+    many = f"more than {MAX_LEVELS_CEILING:,}" if count > MAX_LEVELS_CEILING else f"{count:,}"
+    if declared:
+        raise TableError(f"{table}: categorical column '{shown(name)}' has {many} levels, more "
+                         f"than columns.max_levels = {limit}; one-hot encoding it would add "
+                         "that many features: exclude it, group its levels, or raise "
+                         "columns.max_levels")
+    raise TableError(f"{table}: column '{shown(name)}' looks like an identifier ({many} "
+                     f"distinct values, more than columns.max_levels = {limit}); exclude it, "
+                     "or declare it categorical with a higher level limit (columns.categorical "
+                     "and columns.max_levels)")
 
 
 def _level_order(values: set[str]) -> Callable[[str], tuple[float, str]]:
@@ -244,7 +290,7 @@ class InfiniteValuesError(DesignError):
                  ) -> None:
         self.table, self.column, self.count = table, column, count
         self.first_row, self.last_row = first_row, last_row
-        super().__init__(f"{table}: column '{column}' has {count:,} infinite value"
+        super().__init__(f"{table}: column '{shown(column)}' has {count:,} infinite value"
                          f"{'s' if count != 1 else ''} (the first in rows {first_row:,}-"
                          f"{last_row:,}); replace them or exclude the column")
 
@@ -330,7 +376,7 @@ def encode_rows(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0) -> Enc
     if missing:
         if plan.missing == "fail":
             name, count = next(iter(missing.items()))
-            raise DesignError(f"{plan.table}: column '{name}' has {count} missing value"
+            raise DesignError(f"{plan.table}: column '{shown(name)}' has {count} missing value"
                               f"{'s' if count > 1 else ''} in rows {first_row:,}-"
                               f"{first_row + n - 1:,} and the policy says missing: fail; "
                               "fill them, or set missing: drop_rows")
@@ -403,20 +449,21 @@ def _check_weights(plan: DesignPlan, weights: FloatArray, first_row: int) -> Non
     where = f"rows {first_row:,}-{first_row + weights.size - 1:,}"
     if np.isnan(weights).any():
         count = int(np.isnan(weights).sum())
-        raise DesignError(f"{plan.table}: weight column '{plan.weight}' has {count} missing "
+        raise DesignError(f"{plan.table}: weight column '{shown(plan.weight)}' has {count} missing "
                           f"value{'s' if count > 1 else ''} in {where}; fill or drop them")
     if not np.isfinite(weights).all():
-        raise DesignError(f"{plan.table}: weight column '{plan.weight}' has infinite values in "
+        raise DesignError(f"{plan.table}: weight column '{shown(plan.weight)}' has infinite values in "
                           f"{where}; weights must be finite and non-negative")
     if (weights < 0).any():
         count = int((weights < 0).sum())
-        raise DesignError(f"{plan.table}: weight column '{plan.weight}' has {count} negative "
+        raise DesignError(f"{plan.table}: weight column '{shown(plan.weight)}' has {count} negative "
                           f"value{'s' if count > 1 else ''} in {where}; weights must be >= 0")
 
 
-def finish_design(plan: DesignPlan, means: FloatArray, counts: RowCounts) -> Design:
+def finish_design(plan: DesignPlan, means: FloatArray, rows: int, counts: RowCounts) -> Design:
     """Choose reference levels from what the used rows contain (``means``: the main pass's
-    weighted column means, so a dummy's mean is its level's share); name the design columns."""
+    weighted column means, so a dummy's mean is its level's share; ``rows``: the rows with a
+    positive weight); name the design columns."""
     features: list[str] = []
     selection: list[int] = []
     groups: list[Group] = []
@@ -431,21 +478,24 @@ def finish_design(plan: DesignPlan, means: FloatArray, counts: RowCounts) -> Des
         present = [k for k in range(len(part.levels)) if means[position + k] > 0.0]
         absent = [part.levels[k] for k in range(len(part.levels)) if k not in present]
         if absent:
-            notes.append(f"column '{part.column}': level{'s' if len(absent) > 1 else ''} "
-                         f"{', '.join(repr(a) for a in absent[:5])} have no used rows and get "
+            notes.append(f"column '{shown(part.column)}': level{'s' if len(absent) > 1 else ''} "
+                         f"{', '.join(shown(a, 80, quote=True) for a in absent[:5])} have no used rows and get "
                          "no dummy")
+        if not part.declared:
+            _refuse_identifier_like(plan.table, part.column, len(present), rows)
         if len(present) <= 1:
-            notes.append(f"column '{part.column}' has a single level among the used rows; it "
+            notes.append(f"column '{shown(part.column)}' has a single level among the used rows; it "
                          "adds no feature")
         else:
             start = len(features)
-            kept = present[1:]
+            reference, reason = _reference_level(plan, part, present, means, rows, position)
+            kept = [k for k in present if k != reference]
             for k in kept:
                 features.append(f"{part.column}={part.levels[k]}")
                 selection.append(position + k)
-            groups.append(Group(part.column, part.levels[present[0]],
+            groups.append(Group(part.column, part.levels[reference],
                                 tuple(part.levels[k] for k in kept),
-                                tuple(range(start, start + len(kept)))))
+                                tuple(range(start, start + len(kept))), reason))
         position += len(part.levels)
     if not features:
         raise DesignError(f"{plan.table}: no feature column is left after encoding; "
@@ -458,14 +508,55 @@ def finish_design(plan: DesignPlan, means: FloatArray, counts: RowCounts) -> Des
             break
         seen.add(name)
     if clash is not None:  # e.g. a column named 'kind=rain' beside categorical 'kind'
-        raise DesignError(f"{plan.table}: two design columns would both be named '{clash}' "
+        raise DesignError(f"{plan.table}: two design columns would both be named '{shown(clash)}' "
                           "(a column name equals a '<column>=<level>' dummy); rename the "
                           "column or exclude it")
     return Design(tuple(features), tuple(groups), tuple(selection), plan.weight, counts,
                   tuple(notes))
 
 
+def _refuse_identifier_like(table: str, column: str, levels: int, rows: int) -> None:
+    """A text column with a distinct value in (almost) every used row is an identifier."""
+    if rows >= IDENTIFIER_MIN_ROWS and levels >= IDENTIFIER_DISTINCT_SHARE * rows:
+        raise DesignError(f"{table}: column '{shown(column)}' looks like an identifier "
+                          f"({levels:,} distinct values in {rows:,} used rows); exclude "
+                          "it, or declare it categorical with a higher level limit "
+                          "(columns.categorical and columns.max_levels)")
+
+
+def _reference_level(plan: DesignPlan, part: Categorical, present: list[int],
+                     means: FloatArray, rows: int, position: int) -> tuple[int, str]:
+    """(index into ``part.levels``, reason in words) of the reference level.
+
+    The override (``columns.reference``) wins; otherwise the most frequent level among the used
+    rows, counted exactly (unweighted) or by weight share, ties to the first in sort order.
+    """
+    if part.reference is not None:
+        k = part.levels.index(part.reference)
+        if k not in present:
+            raise DesignError(
+                f"{plan.table}: columns.reference sets level '{shown(part.reference)}' for "
+                f"column '{shown(part.column)}', but no used row has it (its rows were dropped); "
+                f"choose one of: {_preview(part.levels[j] for j in present)}")
+        return k, "set by columns.reference"
+    share = {k: float(means[position + k]) for k in present}
+    if plan.weight is None:  # the mean of a dummy times the row count is its exact count
+        count = {k: round(v * rows) for k, v in share.items()}
+        top = max(count.values())
+        tied = [k for k in present if count[k] == top]
+        amount = f"{top:,} of {rows:,} used rows"
+    else:  # weight shares are sums of floats: equal within rounding counts as a tie
+        top_share = max(share.values())
+        tied = [k for k in present if share[k] >= top_share * (1 - 1e-12)]
+        amount = f"{100 * top_share:.1f}% of the weight of the used rows"
+    reason = f"most frequent level ({amount})"
+    if len(tied) > 1:
+        others = ", ".join(f"'{part.levels[k]}'" for k in tied[1:4])
+        reason += f"; tied with {others}{', ...' if len(tied) > 4 else ''}: first in sort order"
+    return tied[0], reason
+
+
 def _preview(names: Iterable[str], limit: int = 8) -> str:
-    items = list(names)
-    shown = ", ".join(items[:limit])
-    return shown + (f", ... ({len(items)} in all)" if len(items) > limit else "")
+    items = [shown(name, 80) for name in names]
+    listed = ", ".join(items[:limit])
+    return listed + (f", ... ({len(items)} in all)" if len(items) > limit else "")

@@ -47,13 +47,18 @@ class TableSummary(_Open):
 class PolicySummary(_Open):
     name: str
     source: str | None
-    sha256: str
+    sha256: str = Field(description="sha256 of the policy file's bytes (of the effective "
+                        "policy when it was built in code).")
+    effective_sha256: str = Field(description="sha256 of the policy as checked: its canonical "
+                                  "JSON (all keys with defaults, sorted, compact, UTF-8).")
     limits: Limits
 
 
 class GroupSummary(_Closed):
     column: str
     reference: str
+    reference_reason: str = Field(description="Why this level is the reference: the most "
+                                  "frequent among the used rows, or set by columns.reference.")
     features: list[str]
 
 
@@ -180,6 +185,8 @@ class VerdictDocument(_Open):
     tool: ToolInfo
     table: TableSummary
     policy: PolicySummary
+    target: list[str] = Field(description="Target column(s) named by the policy "
+                              "(columns.target); never features.")
     features: list[str]
     groups: list[GroupSummary]
     design_notes: list[str]

@@ -137,11 +137,14 @@ class Verdict:
                 "name": self.policy.name,
                 "source": self.policy.source,
                 "sha256": self.policy.sha256,
+                "effective_sha256": self.policy.effective_sha256,
                 "limits": self.policy.limits.model_dump(mode="json"),
             },
+            "target": list(self.policy.columns.target),
             "features": list(names),
             "groups": [
                 {"column": g.column, "reference": g.reference,
+                 "reference_reason": g.reference_reason,
                  "features": [names[k] for k in g.indices]}
                 for g in self.design.groups
             ],

@@ -12,21 +12,32 @@ DEFAULT_FILE = "gate-policy.yaml"
 STARTER_POLICY = """\
 # collinearity-gate policy (written by `gate policy init`).
 # Check it with `gate policy validate FILE`; its JSON Schema: `gate policy schema`.
+# Read as YAML 1.2: only true/false are booleans (off, no, yes, on are words) and 1:30 is text.
+# A key given twice, aliases (*name) and merge keys (<<) are refused.
 policy_version: 1
 name: my-feature-table            # shown in every verdict and report
 description: Limits for the features of one model; say which model and who owns it.
 
 columns:
   include: ["*"]                  # shell-style globs over column names
-  exclude: []                     # e.g. [row_id, observed_at, target]: ids, times, the target
-  categorical: []                 # one-hot encoded, first sorted level is the reference;
-                                  # string and category columns are categorical anyway
+  exclude: []                     # e.g. [row_id, observed_at]: ids and times are no features
+  target: []                      # the model's target column(s): never features, named in
+                                  # the verdict, e.g. [rentals]
+  categorical: []                 # one-hot encoded, one GVIF group each; string and category
+                                  # columns are categorical anyway
+  reference: {}                   # reference level per categorical column, e.g.
+                                  # {weather_kind: clear}; default: its most frequent level
+                                  # among the used rows (ties: the first in sort order)
+  max_levels: 50                  # a categorical column with more levels is refused; a text
+                                  # column not listed in categorical is called identifier-like
+                                  # above it, or with a distinct value in >= 90% of >= 20 used
+                                  # rows (both rules: common practice, no source)
   weight: null                    # optional column of non-negative row weights
 
 missing: drop_rows                # drop_rows: drop incomplete rows and count them | fail
 
 limits:
-  # Each limit has a level: fail | warn | "off" (quote "off": bare off is YAML for false).
+  # Each limit has a level: fail | warn | off. Numbers must be finite (no .inf or .nan).
   # |r| >= 0.8 between two features: a common rule of thumb (common practice, no source).
   pairwise_correlation: {max: 0.8, level: warn, method: pearson}
   # VIF > 5: standard errors inflated by more than sqrt(5) = 2.24x (common practice, no

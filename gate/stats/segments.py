@@ -56,8 +56,8 @@ def segment_policy(policy: Policy) -> Policy:
     """The policy with the segment columns excluded from the features (they are not features)."""
     if policy.segments is None:
         return policy
-    exclude = list(policy.columns.exclude) + [
-        escape_glob(c) for c in policy.segments.by if escape_glob(c) not in policy.columns.exclude]
+    exclude = tuple(policy.columns.exclude) + tuple(
+        escape_glob(c) for c in policy.segments.by if escape_glob(c) not in policy.columns.exclude)
     columns = policy.columns.model_copy(update={"exclude": exclude})
     return policy.model_copy(update={"columns": columns})
 
