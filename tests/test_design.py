@@ -8,12 +8,12 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pytest
-from gate.design.plan import MAX_LEVELS, encode_block, finish_design, plan_design
-from gate.judge.verdict import Verdict
-from gate.policy.models import Policy
 
 import gate
+from gate.design.plan import MAX_LEVELS, encode_block, finish_design, plan_design
 from gate.errors import DesignError, TableError
+from gate.judge.verdict import Verdict
+from gate.policy.models import Policy
 from gate.read.sources import ArrowTableSource, from_dataframe
 from gate.stats.accumulators import CentredGram
 from gate.stats.local import main_pass

@@ -20,15 +20,15 @@ from typing import Any
 import annotated_types
 import pytest
 import yaml
+from pydantic import BaseModel, ValidationError
+
+from gate.errors import PolicyError, shown
 from gate.policy.models import (
     Policy,
     load_policy,
     packaged_policy_path,
     parse_policy,
 )
-from pydantic import BaseModel, ValidationError
-
-from gate.errors import PolicyError, shown
 
 SOURCE = "fleet-policy.yaml"
 

@@ -15,13 +15,13 @@ import pandas as pd
 import pytest
 import scipy.linalg as sla
 import statsmodels.datasets.longley as longley_data
-from gate.judge.verdict import Verdict
-from gate.policy.models import Policy
 from statsmodels.stats.outliers_influence import variance_inflation_factor
 from statsmodels.tools import add_constant
 
 import gate
+from gate.judge.verdict import Verdict
 from gate.numerics.kernels import INTERCEPT
+from gate.policy.models import Policy
 
 Recorder = Callable[[str, float], None]
 SEED = 20261202
