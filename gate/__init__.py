@@ -4,6 +4,7 @@ from gate.api import check
 from gate.errors import DesignError, GateError, GateFailed, OutputError, PolicyError, TableError
 from gate.judge import Finding
 from gate.policy import Policy, load_policy, parse_policy
+from gate.read.sql import sql
 from gate.verdict import Verdict
 
 __all__ = [
@@ -19,4 +20,5 @@ __all__ = [
     "check",
     "load_policy",
     "parse_policy",
+    "sql",
 ]

@@ -44,7 +44,8 @@ def main(argv: Sequence[str] | None = None) -> int:
 def _add_table_arguments(command: argparse.ArgumentParser) -> None:
     """TABLE, --policy and --chunk-rows: the same meaning wherever a table is checked."""
     command.add_argument("table", metavar="TABLE",
-                         help=".parquet (file or folder), .csv, .feather/.arrow")
+                         help=".parquet (file or folder), .csv, .feather/.arrow, or a "
+                         "database URL (gate check only)")
     command.add_argument("--policy", metavar="FILE",
                          help="policy YAML (default: the packaged default policy)")
     command.add_argument("--chunk-rows", metavar="N", type=int,
@@ -62,6 +63,15 @@ def build_parser() -> argparse.ArgumentParser:
     check = commands.add_parser("check", help="check a table; exit 0 pass/warn, 1 fail, 2 bad "
                                 "input", description="Check a feature table against a policy.")
     _add_table_arguments(check)
+    check.add_argument("--query", metavar="SQL",
+                       help="with a database URL as TABLE (duckdb://..., postgresql://...): "
+                       "the SELECT statement to check")
+    check.add_argument("--db-table", metavar="NAME",
+                       help="with a database URL as TABLE: the table to check (NAME or "
+                       "SCHEMA.NAME)")
+    check.add_argument("--push-down", action=argparse.BooleanOptionalAction, default=None,
+                       help="with a database URL: compute the sums inside the database instead "
+                       "of streaming the rows (default: streamed, for DuckDB and PostgreSQL)")
     check.add_argument("--out", metavar="DIR", default="gate-out",
                        help="folder for verdict.json and summary.html (default: gate-out)")
     check.add_argument("--label", metavar="TEXT", help="free text carried into the verdict")
@@ -151,7 +161,7 @@ def _run_check(args: argparse.Namespace) -> int:
     if args.scheduler and args.engine != "dask":
         raise GateError("--scheduler needs --engine dask; add --engine dask")
     _preload_html_writer()
-    verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
+    verdict = check(_table_or_database(args), args.policy, label=args.label, chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
                     progress=None if args.quiet else terminal_progress)
     written = write_check_outputs(verdict, Path(args.out), junit=getattr(args, "junit", None),
@@ -166,6 +176,18 @@ def _run_check(args: argparse.Namespace) -> int:
             print(line)
         print(f"  wrote {', '.join(str(p) for p in written)}")
     return verdict.exit_code
+
+
+def _table_or_database(args: argparse.Namespace) -> Any:
+    """TABLE as given, or gate.sql(TABLE, --query/--db-table) for a database URL."""
+    from gate.read.sql import is_database_url, sql
+
+    if is_database_url(args.table):
+        return sql(args.table, query=args.query, table=args.db_table, push_down=args.push_down)
+    if args.query is not None or args.db_table is not None or args.push_down is not None:
+        raise GateError(f"{args.table}: --query, --db-table and --push-down need a database "
+                        "URL as TABLE (duckdb://... or postgresql://...)")
+    return args.table
 
 
 def _preload_html_writer() -> None:

@@ -34,6 +34,8 @@ WHOLE_ROW_GROUP_BYTES = 128 << 20
 #: up to this much per column is cheaper read whole. Measured on 20,000 x 2,000 (one 395 MB row
 #: group): streamed in 4,194-row batches 1.7 GB peak and 2.1 s; read whole 0.6 GB and 0.34 s.
 STREAM_BYTES_PER_COLUMN = 1 << 20
+#: URL schemes of database sources (gate/read/sql.py): never opened as file paths.
+DATABASE_SCHEMES = ("duckdb", "postgresql", "postgres")
 SUFFIXES = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv", ".feather": "arrow",
             ".arrow": "arrow", ".ipc": "arrow"}
 
@@ -332,6 +334,10 @@ def from_dataframe(frame: Any, name: str = "<DataFrame>") -> ArrowTableSource:
 
 def open_table(table: Any) -> TableSource:
     """A path (str/Path), a pandas DataFrame, a pyarrow Table, or a TableSource."""
+    if isinstance(table, str) and table.split(":", 1)[0].lower() in DATABASE_SCHEMES:
+        raise TableError(f"{table.split(':', 1)[0]}:// is a database: say what to read with "
+                         "gate.sql(url, query=...) or gate.sql(url, table=...) (CLI: --query "
+                         "or --db-table)")
     if isinstance(table, (str, Path)):
         return open_path(Path(table))
     if isinstance(table, pa.Table):
@@ -341,7 +347,7 @@ def open_table(table: Any) -> TableSource:
     if type(table).__module__.startswith("dask") and hasattr(table, "to_delayed"):
         return DaskFrameSource(table)
     if hasattr(table, "chunks") and hasattr(table, "columns"):
-        return table  # type: ignore[no-any-return]
+        return table  # type: ignore[no-any-return]  # e.g. gate.sql(...) (gate/read/sql.py)
     raise TableError(f"cannot read a {type(table).__name__} as a table; pass a file path, "
                      "a pandas DataFrame, a pyarrow Table or a dask DataFrame")
 
