@@ -95,8 +95,7 @@ def _check_segments(source: TableSource, policy: Policy, *, label: str | None,
     runner = LocalEngine()
     distinct = None
     if getattr(source, "push_down", False):  # a database computes the sums (gate.sql)
-        from gate.stats.pushdown import PushDownEngine
-        from gate.stats.pushdown import segment_pass  # type: ignore[no-redef]
+        from gate.stats.pushdown import PushDownEngine, segment_pass
 
         distinct = PushDownEngine(source).distinct_values  # type: ignore[arg-type]
     plan = plan_design(source, segment_policy(policy), distinct=distinct)
@@ -140,9 +139,9 @@ def _verdict_from_gram(runner: Engine, source: TableSource, plan: DesignPlan,
         scaling=policy.limits.condition_number.scaling)
     database = _database_provenance(source)
     if factor is not None and database is not None and database["statistics"] == "push-down":
-        design = replace(design, notes=design.notes + (
-            "exact pass: the database's sums could not settle the rank, so the rows were "
-            "streamed from the database for it",))
+        note = ("exact pass: the database's sums could not settle the rank, so the rows were "
+                "streamed from the database for it")
+        design = replace(design, notes=design.notes + (note,))
     return build_verdict(diagnostics, design, policy, source_name=source.name,
                          sha256=sha256(), label=label, today=today, database=database)
 

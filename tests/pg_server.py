@@ -97,7 +97,7 @@ def running_server() -> Iterator[PgServer]:
         if started:
             subprocess.run(_as_server_user([str(bin_dir / "pg_ctl"), "-D", str(data), "-m",
                                             "fast", "-w", "stop"]),
-                           capture_output=True, env=env, cwd=root)
+                           check=False, capture_output=True, env=env, cwd=root)
         shutil.rmtree(root, ignore_errors=True)
 
 

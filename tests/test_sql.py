@@ -17,14 +17,14 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from conftest import CliResult, policy_from
 
 import gate
 from gate.examples.bike_share_demand import station_hours
 from gate.read.sql import mask_url, quote_ident
-from conftest import CliResult, policy_from
 
 sys.path.insert(0, str(Path(__file__).parent))
-import pg_server  # noqa: E402
+import pg_server
 
 duckdb = pytest.importorskip("duckdb")
 DEMO_POLICY = Path(__file__).resolve().parents[1] / "examples" / "bike_share_policy.yaml"
@@ -228,8 +228,8 @@ def test_hostile_column_name_is_harmless(tmp_path: Path) -> None:
 
 def test_cli_checks_a_duckdb_query(tmp_path: Path, run_cli: Callable[..., CliResult]) -> None:
     url = duck_file(tmp_path, {"station_hours": pa.table(station_hours(800))})
-    result = run_cli(["check", url, "--query", "SELECT * FROM station_hours WHERE hour_of_day "
-                      ">= 0;", "--policy", str(DEMO_POLICY), "--out", str(tmp_path / "out"),
+    query = "SELECT * FROM station_hours WHERE hour_of_day >= 0;"
+    result = run_cli(["check", url, "--query", query, "--policy", str(DEMO_POLICY), "--out", str(tmp_path / "out"),
                       "--push-down"])
     assert result.code == 1, result.err
     assert "duckdb://" in result.out
