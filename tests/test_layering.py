@@ -56,7 +56,7 @@ PLACED_AFTER: dict[str, str] = {
     "progress": "passes",  # the progress line the passes report rows to (no gate imports)
     "engine_dask": "passes",  # the Dask engine: same passes on a cluster (optional extra)
     "read.sql": "table",  # database sources (gate.sql): Arrow batches from DuckDB/PostgreSQL
-    "stats.pushdown": "judge",  # sums in the database -> CentredGram; after segments (its result type)
+    "stats.pushdown": "judge",  # database sums -> CentredGram; after segments (result type)
     "bench": "__init__",  # `python -m gate.bench`: times `gate check` via the public API
 }
 

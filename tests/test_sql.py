@@ -363,3 +363,12 @@ def test_postgres_bad_input_is_one_line_without_the_password(
 def test_sql_needs_exactly_one_of_query_and_table() -> None:
     with pytest.raises(gate.TableError, match="exactly one of"):
         gate.sql("duckdb://", query="SELECT 1", table="t")
+
+
+def test_push_down_over_parquet_with_nan_stops_instead_of_guessing(tmp_path: Path) -> None:
+    """DuckDB folds NaN comparisons away over read_parquet (no NaN in Parquet statistics);
+    push-down must refuse (exit 2), never return sums with the NaN rows in them."""
+    pq.write_table(pa.table(station_hours(1000)), tmp_path / "demo.parquet")
+    query = f"SELECT * FROM read_parquet('{tmp_path / 'demo.parquet'}')"
+    with pytest.raises(gate.TableError, match="--no-push-down"):
+        gate.check(gate.sql("duckdb://", query=query, push_down=True), DEMO_POLICY)

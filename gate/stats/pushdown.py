@@ -159,10 +159,15 @@ class _Counts:
     sums: np.ndarray  # SUM(w * x_j) over the used rows
 
 
+#: The per-row "dropped" flag, computed once per row in a fenced sub-query (``OFFSET 0`` keeps
+#: PostgreSQL from inlining it into every aggregate's FILTER).
+DROP_FLAG = '"gate_drop_row_7f3a"'
+
+
 def _first_pass(source: SqlSource, plan: DesignPlan, design: _DesignSql,
                 keys: Sequence[str]) -> dict[SegmentKey, _Counts]:
-    used = f"NOT {design.row_missing}"
-    exprs = ["COUNT(*)", f"COUNT(*) FILTER (WHERE {design.row_missing})"]
+    used = f"NOT {SOURCE_ALIAS}.{DROP_FLAG}"
+    exprs = ["COUNT(*)", f"COUNT(*) FILTER (WHERE {SOURCE_ALIAS}.{DROP_FLAG})"]
     for column, expr in design.numeric:
         exprs += [f"COUNT(*) FILTER (WHERE {design.missing[column]})",
                   f"COUNT(*) FILTER (WHERE {expr} IN {INFINITIES})"]
@@ -178,7 +183,9 @@ def _first_pass(source: SqlSource, plan: DesignPlan, design: _DesignSql,
     else:
         exprs += [f"COUNT(*) FILTER (WHERE {used})", f"COUNT(*) FILTER (WHERE {used})"]
         exprs += [f"SUM({v}) FILTER (WHERE {used})" for v in design.values]
-    rows = _grouped(source, keys, exprs, f"({source.query}) AS {SOURCE_ALIAS}")
+    flagged = (f"(SELECT {SOURCE_ALIAS}.*, {design.row_missing} AS {DROP_FLAG} FROM "
+               f"({source.query}) AS {SOURCE_ALIAS} OFFSET 0) AS {SOURCE_ALIAS}")
+    rows = _grouped(source, keys, exprs, flagged)
     if len(rows) > MAX_SEGMENTS:
         raise TableError(f"{source.name}: segments.by gives more than {MAX_SEGMENTS} segments; "
                          "segment by a coarser column")
@@ -205,6 +212,14 @@ def _first_pass(source: SqlSource, plan: DesignPlan, design: _DesignSql,
         weight_sum = float(next(it) or 0.0)
         positive = int(next(it) or 0)
         sums = np.array([float(v) if v is not None else 0.0 for v in it])
+        if max(missing.values(), default=0) > dropped or not np.isfinite(sums).all() and \
+                not any(totals.get(c, [0, 0])[1] for c, _ in design.numeric):
+            # Seen with DuckDB over read_parquet: Parquet statistics carry no NaN, and its
+            # optimiser then folds "x = NaN" to false inside a sub-query (not in a FILTER).
+            raise TableError(f"{source.name}: the database counted {max(missing.values())} "
+                             f"missing values but dropped {dropped} rows (NaN comparisons it "
+                             "optimised away); store missing values as NULL, or use "
+                             "--no-push-down")
         out[key] = _Counts(RowCounts(read, dropped, missing), weight_sum, positive, sums)
     _raise_bad_values(source, plan, totals, out)
     return out
@@ -279,7 +294,7 @@ def _cross_products(source: SqlSource, design: _DesignSql, keys: Sequence[str],
         inner += [f"({design.values[j]} - {float_literal(shift[j])}) AS \"z{j}\""
                   for j in needed]
         from_sql = (f"(SELECT {', '.join(inner)} FROM ({source.query}) AS {SOURCE_ALIAS} "
-                    f"WHERE NOT {design.row_missing}) AS {ROWS_ALIAS}")
+                    f"WHERE NOT {design.row_missing} OFFSET 0) AS {ROWS_ALIAS}")
         w = '"w" * ' if weighted else ""
         exprs = [f"SUM({w}\"z{i}\")" if j < 0 else f"SUM({w}\"z{i}\" * \"z{j}\")"
                  for i, j in batch]
@@ -313,6 +328,11 @@ def pushdown_pass(source: SqlSource, plan: DesignPlan, by: Sequence[str] = ()
              if total_weight > 0 else np.zeros(p))
     shift = np.where(np.isfinite(shift), shift, 0.0)
     products = _cross_products(source, design, keys, shift) if total_weight > 0 else {}
+    for linear, square in products.values():
+        if not (np.isfinite(linear).all() and np.isfinite(square).all()):
+            raise TableError(f"{source.name}: the database returned non-finite sums (missing "
+                             "values it did not filter: NaN comparisons it optimised away); "
+                             "store missing values as NULL, or use --no-push-down")
     segments: list[SegmentStatistics] = []
     for key in sorted(first, key=_order):
         counts = first[key]
