@@ -5,6 +5,7 @@ from gate.errors import DesignError, GateError, GateFailed, OutputError, PolicyE
 from gate.judge.findings import Finding
 from gate.judge.verdict import Verdict
 from gate.policy.models import Policy, load_policy, parse_policy
+from gate.read.sql import sql
 
 __all__ = [
     "DesignError",
@@ -19,4 +20,5 @@ __all__ = [
     "check",
     "load_policy",
     "parse_policy",
+    "sql",
 ]

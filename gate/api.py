@@ -97,8 +97,17 @@ def _check_segments(source: TableSource, policy: Policy, *, label: str | None,
                          "a pandas DataFrame or a pyarrow Table")
     digest = _hash_in_background(source)
     runner = LocalEngine()
-    plan = plan_design(source, segment_policy(policy))
-    result = segment_pass(source, plan, spec.by, chunk_rows=chunk_rows, progress=progress)
+    distinct = None
+    if getattr(source, "push_down", False):  # a database computes the sums (gate.sql)
+        from gate.stats.pushdown import PushDownEngine
+        from gate.stats.pushdown import segment_pass as pushed_segment_pass
+
+        distinct = PushDownEngine(source).distinct_values  # type: ignore[arg-type]
+    plan = plan_design(source, segment_policy(policy), distinct=distinct)
+    if getattr(source, "push_down", False):
+        result = pushed_segment_pass(source, plan, spec.by, chunk_rows=chunk_rows)
+    else:
+        result = segment_pass(source, plan, spec.by, chunk_rows=chunk_rows, progress=progress)
     sha256 = digest()
 
     def stages(part: TableSource, full_gram: CentredGram, counts: RowCounts) -> Verdict:
@@ -136,13 +145,29 @@ def _verdict_from_gram(runner: Engine, source: TableSource, plan: DesignPlan,
     diagnostics = compute_diagnostics(
         gram, exact, factor=factor, groups=tuple(g.indices for g in design.groups),
         scaling=policy.limits.condition_number.scaling)
+    database = _database_provenance(source)
+    if factor is not None and database is not None and database["statistics"] == "push-down":
+        note = ("exact pass: the database's sums could not settle the rank, so the rows were "
+                "streamed from the database for it")
+        design = replace(design, notes=design.notes + (note,))
     return build_verdict(diagnostics, design, policy, source_name=source.name,
-                         sha256=sha256(), label=label, today=today)
+                         sha256=sha256(), label=label, today=today, database=database)
+
+
+def _database_provenance(source: TableSource) -> dict[str, Any] | None:
+    """URL (password masked), query, its sha256, reported rows -- for a gate.sql source."""
+    base = getattr(source, "base", source)  # a segment of a database source
+    provenance = getattr(base, "provenance", None)
+    return provenance() if callable(provenance) else None
 
 
 def _engine(source: TableSource, engine: str | None, scheduler: Any) -> Engine:
     if engine is None:
         engine = "dask" if isinstance(source, DaskFrameSource) else "local"
+    if engine == "local" and getattr(source, "push_down", False):  # gate.sql(push_down=True)
+        from gate.stats.pushdown import PushDownEngine
+
+        return PushDownEngine(source)  # type: ignore[arg-type]
     if engine == "dask":
         from gate.stats.dask import DaskEngine  # dask is optional: imported only here
 
@@ -181,13 +206,14 @@ def _hash_in_background(source: TableSource) -> Callable[[], str | None]:
 
 def build_verdict(diagnostics: Diagnostics, design: Design, policy: Policy, *,
                   source_name: str, sha256: str | None, label: str | None = None,
-                  today: dt.date | None = None) -> Verdict:
+                  today: dt.date | None = None, database: dict[str, Any] | None = None
+                  ) -> Verdict:
     findings, waivers = judge(diagnostics, design, policy, today or today_utc())
     counts = design.counts
     return Verdict(
         status=status_of(findings), findings=findings, waivers=waivers,
         table=TableInfo(source_name, sha256, counts.read, counts.used, counts.dropped,
-                        dict(counts.missing)),
+                        dict(counts.missing), database),
         policy=policy, design=design, diagnostics=diagnostics, label=label,
         created_at=dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
         tool_version=tool_version(),

@@ -9,7 +9,8 @@ import sys
 def add_table_arguments(command: argparse.ArgumentParser) -> None:
     """TABLE, --policy and --chunk-rows: the same meaning wherever a table is checked."""
     command.add_argument("table", metavar="TABLE",
-                         help=".parquet (file or folder), .csv, .feather/.arrow")
+                         help=".parquet (file or folder), .csv, .feather/.arrow, or a "
+                         "database URL (gate check only)")
     command.add_argument("--policy", metavar="FILE",
                          help="policy YAML (default: the packaged default policy)")
     command.add_argument("--chunk-rows", metavar="N", type=int,

@@ -16,6 +16,15 @@ def add_commands(commands: Any) -> None:
     check = commands.add_parser("check", help="check a table; exit 0 pass/warn, 1 fail, 2 bad "
                                 "input", description="Check a feature table against a policy.")
     add_table_arguments(check)
+    check.add_argument("--query", metavar="SQL",
+                       help="with a database URL as TABLE (duckdb://..., postgresql://...): "
+                       "the SELECT statement to check")
+    check.add_argument("--db-table", metavar="NAME",
+                       help="with a database URL as TABLE: the table to check (NAME or "
+                       "SCHEMA.NAME)")
+    check.add_argument("--push-down", action=argparse.BooleanOptionalAction, default=None,
+                       help="with a database URL: compute the sums inside the database instead "
+                       "of streaming the rows (default: streamed, for DuckDB and PostgreSQL)")
     check.add_argument("--out", metavar="DIR", default="gate-out",
                        help="folder for verdict.json and summary.html (default: gate-out)")
     check.add_argument("--label", metavar="TEXT", help="free text carried into the verdict")
@@ -62,7 +71,8 @@ def _run_check(args: argparse.Namespace) -> int:
                "audit_log": getattr(args, "audit_log", None), "inputs": (args.table, args.policy)}
     plan_outputs(Path(args.out), **outputs)  # every output path checked before the long pass
     _preload_html_writer()
-    verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
+    verdict = check(_table_or_database(args), args.policy, label=args.label,
+                    chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
                     progress=None if args.quiet else terminal_progress,
                     csv_delimiter=args.csv_delimiter)
@@ -77,6 +87,18 @@ def _run_check(args: argparse.Namespace) -> int:
             print(line)
         print(f"  wrote {', '.join(str(p) for p in written)}")
     return verdict.exit_code
+
+
+def _table_or_database(args: argparse.Namespace) -> Any:
+    """TABLE as given, or gate.sql(TABLE, --query/--db-table) for a database URL."""
+    from gate.read.sql import is_database_url, sql
+
+    if is_database_url(args.table):
+        return sql(args.table, query=args.query, table=args.db_table, push_down=args.push_down)
+    if args.query is not None or args.db_table is not None or args.push_down is not None:
+        raise GateError(f"{args.table}: --query, --db-table and --push-down need a database "
+                        "URL as TABLE (duckdb://... or postgresql://...)")
+    return args.table
 
 
 def _preload_html_writer() -> None:

@@ -33,6 +33,19 @@ class ToolInfo(_Open):
     version: str
 
 
+class DatabaseSource(_Closed):
+    url: str = Field(description="Database URL with the password replaced by ***.")
+    backend: Literal["duckdb", "postgresql"]
+    query: str = Field(description="The query text the gate wrapped (a --db-table becomes "
+                       "SELECT * FROM the quoted name).")
+    query_sha256: str = Field(description="sha256 of the query text (UTF-8).")
+    rows_reported: int = Field(ge=0, description="Row count the database reported.")
+    statistics: Literal["streamed", "push-down"] = Field(
+        description="Rows streamed to the gate, or sums computed inside the database.")
+    exact_pass_streamed: bool = Field(description="True when push-down sums could not settle "
+                                      "the rank and the rows were streamed for the exact pass.")
+
+
 class TableSummary(_Open):
     source: str = Field(description="Path of the table (or <DataFrame> from the Python API).")
     sha256: str | None = Field(description="sha256 of the table file's bytes; null when the "
@@ -42,6 +55,8 @@ class TableSummary(_Open):
     rows_dropped: int = Field(ge=0)
     missing: dict[str, int] = Field(description="Missing values per column (columns with any).")
     weight: str | None = Field(description="Weight column, if the policy names one.")
+    database: DatabaseSource | None = Field(
+        default=None, description="Present when the table was a database query (gate.sql).")
 
 
 class PolicySummary(_Open):

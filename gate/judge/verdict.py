@@ -47,6 +47,7 @@ class TableInfo:
     rows_used: int
     rows_dropped: int
     missing: dict[str, int]
+    database: dict[str, Any] | None = None  # gate.sql provenance (password masked)
 
 
 @dataclass(frozen=True)
@@ -132,6 +133,7 @@ class Verdict:
                 "rows_dropped": self.table.rows_dropped,
                 "missing": dict(self.table.missing),
                 "weight": self.design.weight,
+                **({"database": dict(self.table.database)} if self.table.database else {}),
             },
             "policy": {
                 "name": self.policy.name,

@@ -37,6 +37,8 @@ WHOLE_ROW_GROUP_BYTES = 128 << 20
 #: up to this much per column is cheaper read whole. Measured on 20,000 x 2,000 (one 395 MB row
 #: group): streamed in 4,194-row batches 1.7 GB peak and 2.1 s; read whole 0.6 GB and 0.34 s.
 STREAM_BYTES_PER_COLUMN = 1 << 20
+#: URL schemes of database sources (gate/read/sql.py): never opened as file paths.
+DATABASE_SCHEMES = ("duckdb", "postgresql", "postgres")
 SUFFIXES = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv", ".feather": "arrow",
             ".arrow": "arrow", ".ipc": "arrow"}
 #: Integers beyond +-2**53 may have no exact float64; the gate computes in float64.
@@ -621,6 +623,10 @@ def open_table(table: Any, *, csv_delimiter: str | None = None,
     ``csv_delimiter`` (CSV files only): the field delimiter, one character or 'tab'.
     ``categorical``: columns the policy declares categorical; a CSV reads them as text.
     """
+    if isinstance(table, str) and table.split(":", 1)[0].lower() in DATABASE_SCHEMES:
+        raise TableError(f"{table.split(':', 1)[0]}:// is a database: say what to read with "
+                         "gate.sql(url, query=...) or gate.sql(url, table=...) (CLI: --query "
+                         "or --db-table)")
     if isinstance(table, (str, Path)):
         return open_path(Path(table), csv_delimiter=csv_delimiter, categorical=categorical)
     if csv_delimiter is not None:
@@ -634,7 +640,7 @@ def open_table(table: Any, *, csv_delimiter: str | None = None,
     if type(table).__module__.startswith("dask") and hasattr(table, "to_delayed"):
         return DaskFrameSource(table)
     if hasattr(table, "chunks") and hasattr(table, "columns"):
-        return table  # type: ignore[no-any-return]
+        return table  # type: ignore[no-any-return]  # e.g. gate.sql(...) (gate/read/sql.py)
     raise TableError(f"cannot read a {type(table).__name__} as a table; pass a file path, "
                      "a pandas DataFrame, a pyarrow Table or a dask DataFrame")
 
