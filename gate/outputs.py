@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import hashlib
 from pathlib import Path
 
 from gate.artefacts.files import write_atomic
@@ -49,6 +48,6 @@ def write_check_outputs(verdict: Verdict, out_dir: Path, *, html: bool = True,
     if audit_log is not None:
         from gate.artefacts.audit import append_entry
 
-        append_entry(audit_log, verdict, hashlib.sha256(data).hexdigest())
+        append_entry(audit_log, data)  # also keeps the verdict in verdicts/ beside the log
         written.append(audit_log)
     return written
