@@ -140,8 +140,8 @@ def _append(file: Path, fields: dict[str, Any]) -> dict[str, Any]:
         if last is None:
             prev, seq = GENESIS, 1
         else:
-            previous = _parse(last)
-            if isinstance(previous, str) or _shape_problem(previous) is not None:
+            previous = parse_line(last)
+            if isinstance(previous, str) or entry_problem(previous) is not None:
                 raise OutputError(f"{file}: the last line is not an audit entry; run "
                                   f"`gate audit verify {file}` and repair the log before "
                                   "appending")
@@ -202,7 +202,7 @@ def _reject_constant(name: str) -> Any:
     raise ValueError(f"{name} is not JSON")
 
 
-def _parse(line: bytes) -> dict[str, Any] | str:
+def parse_line(line: bytes) -> dict[str, Any] | str:
     """The entry on a line, or why it is none (never raises)."""
     if len(line) > MAX_LINE_BYTES:
         return f"not an audit entry (a line of {len(line):,} bytes)"
@@ -221,7 +221,7 @@ def _is_sha(value: object) -> bool:
     return isinstance(value, str) and _SHA256.fullmatch(value) is not None
 
 
-def _shape_problem(entry: dict[str, Any]) -> str | None:
+def entry_problem(entry: dict[str, Any]) -> str | None:
     """Why ``entry`` is not an entry of either form, or None."""
     legacy = "format" not in entry
     keys = LEGACY_KEYS if legacy else ENTRY_KEYS
@@ -324,7 +324,7 @@ def verify_chain(path: str | Path, *, expected_head: str | None = None,
     # each exact line first appeared, to tell reordering and replay from removal.
     where: dict[str, int] = {}
     for number, line, _complete in read_lines(file):
-        entry = _parse(line)
+        entry = parse_line(line)
         if isinstance(entry, dict) and _is_sha(entry.get("hash")):
             where.setdefault(entry["hash"], number)
         if isinstance(entry, dict) and "format" not in entry:
@@ -351,10 +351,10 @@ def verify_chain(path: str | Path, *, expected_head: str | None = None,
             return bad(number, f"duplicated: an exact copy of line {seen[digest]} (a replayed "
                        "entry)")
         seen[digest] = number
-        entry = _parse(line)
+        entry = parse_line(line)
         if isinstance(entry, str):
             return bad(number, f"edited: {entry}")
-        shape = _shape_problem(entry)
+        shape = entry_problem(entry)
         if shape is not None:
             return bad(number, f"edited: {shape}")
         if canonical(entry) != line:
@@ -479,8 +479,8 @@ def repair_log(path: str | Path, *, now: dt.datetime | None = None) -> RepairRep
         tail = os.pread(fd, size - end, end) if size > end else b""
         if not tail:
             return RepairReport(name, "none", 0, None)
-        entry = _parse(tail)
-        if isinstance(entry, dict) and _shape_problem(entry) is None \
+        entry = parse_line(tail)
+        if isinstance(entry, dict) and entry_problem(entry) is None \
                 and canonical(entry) == tail and entry["hash"] == entry_hash(entry):
             os.pwrite(fd, b"\n", size)
             os.fsync(fd)
