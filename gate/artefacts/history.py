@@ -28,8 +28,8 @@ import numpy as np
 
 from gate.artefacts.audit import (
     ChainReport,
-    parse_line,
     entry_problem,
+    parse_line,
     read_lines,
     store_path,
     verify_chain,
@@ -98,8 +98,52 @@ class Interner:
     def name(self, text: str) -> int:
         return self.names.setdefault(text, len(self.names))
 
+    def feature_name(self, index: int) -> str:
+        if len(self._by_index) != len(self.names):
+            self._by_index = list(self.names)
+        return self._by_index[index]
+
     def key(self, key: FindingKey) -> int:
         return self.keys.setdefault(key, len(self.keys))
+
+    raw: dict[Any, int] = field(default_factory=dict)
+
+    def finding(self, finding: dict[str, Any]) -> int:
+        """The id of :func:`finding_identity` of ``finding``, memoised on its raw fields."""
+        features = finding.get("features")
+        try:
+            raw = (finding.get("rule"), tuple(features) if isinstance(features, list) else None,
+                   finding.get("segment"))
+            known = self.raw.get(raw)
+        except TypeError:  # an unhashable foreign value: no memo
+            return self.key(finding_identity(finding))
+        if known is None:
+            known = self.raw[raw] = self.key(finding_identity(finding))
+        return known
+
+    _last_names: tuple[str, ...] = ()
+    _by_index: list[str] = field(default_factory=list)
+    _last_index: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int32))
+
+    def vif_arrays(self, vif: dict[str, Any]) -> tuple[np.ndarray, np.ndarray]:
+        """(feature ids, values) of a verdict's VIF map; null -> inf, non-numbers -> NaN.
+        Consecutive runs mostly share their features, so the ids are reused when they do."""
+        names = tuple(vif)
+        if names != self._last_names:
+            self._last_names = names
+            self._last_index = np.fromiter((self.name(str(k)) for k in names), np.int32,
+                                           len(names))
+        values = list(vif.values())
+        try:
+            if None in values:  # numpy would read null as NaN; it means infinite here
+                raise TypeError
+            value = np.array(values, dtype=np.float64)
+            if value.shape != (len(names),):
+                raise TypeError
+        except (TypeError, ValueError):  # null (infinite) or a foreign value
+            value = np.fromiter((math.inf if v is None else (_number(v) or math.nan)
+                                 for v in vif.values()), np.float64, len(names))
+        return self._last_index, value
 
 
 @dataclass
@@ -191,14 +235,13 @@ def reduce_verdict(document: dict[str, Any], where: str, interner: Interner) -> 
     diagnostics = diagnostics if isinstance(diagnostics, dict) else {}
     vif = diagnostics.get("vif")
     if isinstance(vif, dict) and vif:
-        index = np.fromiter((interner.name(str(k)) for k in vif), np.int32, len(vif))
-        value = np.fromiter((math.inf if v is None else (_number(v) or math.nan)
-                             for v in vif.values()), np.float64, len(vif))
+        index, value = interner.vif_arrays(vif)
         run.vif_index, run.vif_value = index, value
         finite = np.where(np.isnan(value), -1.0, value)
         top = int(np.argmax(finite))
         if finite[top] >= 0:
-            run.max_vif, run.max_vif_feature = float(finite[top]), str(list(vif)[top])
+            run.max_vif = float(finite[top])
+            run.max_vif_feature = interner.feature_name(int(index[top]))
     run.condition_number = _number(diagnostics.get("condition_number"))
     run.rank_deficient = diagnostics.get("condition_number", 0) is None
     counts = dict.fromkeys(LEVELS, 0)
@@ -214,7 +257,7 @@ def reduce_verdict(document: dict[str, Any], where: str, interner: Interner) -> 
         elif level in counts:
             counts[level] += 1
         if level in ("fail", "warn"):
-            keys.add(interner.key(finding_identity(finding)))
+            keys.add(interner.finding(finding))
             if finding.get("rule") == "vif" and isinstance(finding.get("features"), list):
                 breaching.update(interner.name(str(f)) for f in finding["features"])
     run.counts, run.findings, run.breaching = counts, frozenset(keys), frozenset(breaching)
@@ -393,8 +436,8 @@ def build_history(source: str | Path, *, horizon: int = 30, since: str | None = 
     if filtered:
         notes.append(f"{filtered} run{'s' if filtered > 1 else ''} left out by the filters")
     ordered = []
-    for key in sorted(groups):
-        group = groups[key]
+    for group_key in sorted(groups):
+        group = groups[group_key]
         if kind == "folder":  # a log is already in its own (chained) order
             group.runs.sort(key=lambda r: (r.moment or dt.datetime.min.replace(tzinfo=dt.UTC),
                                            r.where))

@@ -43,6 +43,7 @@ MAX_VIF_CHARTS = 24
 MAX_RUN_ROWS = 10_000
 MAX_CHANGE_ROWS = 500
 MAX_POLICY_MARKS = 60
+MAX_POINTS = 1_000  # per chart line (see _envelope)
 MAX_NAMES_IN_CELL = 12
 DASH = "\u2014"
 CHART_WIDTH_IN = 12.4  # at 100 dpi: fits a 1280 px window with the page margins
@@ -154,10 +155,10 @@ def _group_section(history: History, group: Group, number: int, names: list[str]
                    keys: list[Any]) -> str:
     runs = group.runs
     first, last = runs[0].created_at, runs[-1].created_at
-    out = [f'<section id="group-{number}"><h2>Table {_e(group.table)} \u00b7 policy '
-           f"{_e(group.policy_name)}</h2>",
-           f'<p class="note">{len(runs):,} run{"s" if len(runs) != 1 else ""} from '
-           f"{_e(first)} to {_e(last)}.</p>"]
+    out = [(f'<section id="group-{number}"><h2>Table {_e(group.table)} \u00b7 policy '
+           f"{_e(group.policy_name)}</h2>"),
+           (f'<p class="note">{len(runs):,} run{"s" if len(runs) != 1 else ""} from '
+           f"{_e(first)} to {_e(last)}.</p>")]
     out.append(_waiver_table(history, group, number))
     out.append("<h3>Status over time</h3>")
     out.append(f'<div class="chart" id="timeline-{number}">{_timeline_svg(group, number)}</div>')
@@ -185,7 +186,7 @@ def _group_section(history: History, group: Group, number: int, names: list[str]
 
 
 def _waiver_table(history: History, group: Group, number: int) -> str:
-    rows = waiver_rows(group, history.today, history.horizon)
+    rows: list[tuple[str, Any]] = waiver_rows(group, history.today, history.horizon)
     head = (f"<h3>Waivers (expiring within {history.horizon} days of "
             f"{history.today.isoformat()} first)</h3>")
     if not rows:
@@ -211,7 +212,7 @@ def _names(items: Sequence[str]) -> str:
 
 
 def _changes_table(group: Group, number: int, keys: list[Any]) -> str:
-    rows = []
+    rows: list[str] = []
     total = 0
     for pos, appeared, resolved in changes(group):
         total += 1
@@ -288,7 +289,7 @@ def _pyplot() -> Any:
     return plt
 
 
-_RC = {"svg.fonttype": "none", "text.parse_math": False, "font.size": 10,
+_RC: Any = {"svg.fonttype": "none", "text.parse_math": False, "font.size": 10,
        "axes.titlesize": 10, "axes.labelsize": 10, "path.simplify": True,
        "path.simplify_threshold": 0.5, "axes.spines.top": False, "axes.spines.right": False}
 
@@ -298,8 +299,7 @@ def _svg(figure: Any, salt: str) -> str:
 
     buffer = io.StringIO()
     with matplotlib.rc_context({"svg.hashsalt": salt}):
-        figure.savefig(buffer, format="svg", metadata={"Date": None, "Creator": None},
-                       bbox_inches="tight")
+        figure.savefig(buffer, format="svg", metadata={"Date": None, "Creator": None})
     text = buffer.getvalue()
     start = text.find("<svg")
     return text[start:] if start >= 0 else ""
@@ -314,14 +314,15 @@ def _times(group: Group) -> tuple[np.ndarray, np.ndarray]:
         return np.zeros(0), np.zeros(0, np.int64)
     positions = np.array([k for k, _ in known], np.int64)
     moments = [m.replace(tzinfo=None) for _, m in known]
-    return np.asarray(mdates.date2num(moments), dtype=float), positions
+    return np.asarray(mdates.date2num(moments), dtype=float), positions  # type: ignore[no-untyped-call]
 
 
 def _date_axis(axis: Any, most: int = 8) -> None:
     import matplotlib.dates as mdates
 
-    axis.xaxis.set_major_locator(mdates.AutoDateLocator(minticks=2, maxticks=most))
-    axis.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m-%d"))
+    locator = mdates.AutoDateLocator(minticks=2, maxticks=most)  # type: ignore[no-untyped-call]
+    axis.xaxis.set_major_locator(locator)
+    axis.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m-%d"))  # type: ignore[no-untyped-call]
 
 
 def _plain_log_axis(axis: Any) -> None:
@@ -332,6 +333,20 @@ def _plain_log_axis(axis: Any) -> None:
     axis.yaxis.set_major_locator(LogLocator(base=10, numticks=6))
     axis.yaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
     axis.yaxis.set_minor_formatter(NullFormatter())
+
+
+def _envelope(x: np.ndarray, values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """At most MAX_POINTS points per line: runs are binned in order and each bin keeps its
+    largest value (an infinite one included), so no peak or breach disappears from the chart;
+    history.json keeps every run."""
+    if x.size <= MAX_POINTS:
+        return x, values
+    edges = np.linspace(0, x.size, MAX_POINTS + 1).astype(np.int64)
+    starts = edges[:-1]
+    filled = np.where(np.isnan(values), -np.inf, values)
+    peak = np.maximum.reduceat(filled, starts, axis=0)
+    peak[np.isneginf(peak)] = np.nan
+    return x[starts], peak
 
 
 def _timeline_svg(group: Group, number: int) -> str:
@@ -373,6 +388,7 @@ def _timeline_svg(group: Group, number: int) -> str:
             _date_axis(axis)
             axis.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0), frameon=False,
                         fontsize=9)
+            figure.subplots_adjust(left=0.08, right=0.83, top=0.95, bottom=0.22)
             axis.grid(axis="y", color="#e1ded6", linewidth=0.6)
             return _svg(figure, f"timeline-{number}")
         finally:
@@ -385,6 +401,7 @@ def _vif_svg(group: Group, names: list[str], series: np.ndarray, number: int) ->
     plt = _pyplot()
     x, positions = _times(group)
     values = series[positions] if positions.size else series[:0]
+    x, values = _envelope(x, values)
     limits = [r.vif_limit for r in group.runs if r.vif_limit is not None]
     limit = limits[-1] if limits else None
     columns = 3 if len(names) > 2 else len(names)
@@ -422,7 +439,8 @@ def _vif_svg(group: Group, names: list[str], series: np.ndarray, number: int) ->
                 axis.grid(axis="y", color="#e1ded6", linewidth=0.6)
             for c in range(len(names), rows * columns):
                 axes[c // columns][c % columns].set_visible(False)
-            figure.tight_layout()
+            figure.subplots_adjust(left=0.07, right=0.99, top=1 - 0.35 / (2.3 * rows),
+                                   bottom=0.6 / (2.3 * rows), hspace=0.45, wspace=0.22)
             return _svg(figure, f"vif-{number}")
         finally:
             plt.close(figure)
