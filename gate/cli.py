@@ -231,7 +231,7 @@ def _run_audit_repair(args: argparse.Namespace) -> int:
 
 
 def _run_history(args: argparse.Namespace) -> int:
-    from gate.artefacts.history import run_history
+    from gate.artefacts.history_html import run_history
 
     return run_history(args.source, args.out, horizon=args.horizon, since=args.since,
                        until=args.until, label=args.label)

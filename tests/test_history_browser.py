@@ -13,7 +13,8 @@ from test_browser import CHROMIUM, LAUNCH_ARGS, _require_browser
 
 from gate.api import check
 from gate.artefacts.audit import append_entry
-from gate.artefacts.history import build_history, write_history
+from gate.artefacts.history import build_history
+from gate.artefacts.history_html import write_history
 from gate.artefacts.verdict_json import verdict_json
 
 pytestmark = pytest.mark.browser

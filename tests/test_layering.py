@@ -34,6 +34,8 @@ ORDER: list[str] = [
     "artefacts",
     "artefacts.files",
     "artefacts.*",
+    "artefacts.history",  # `gate history`: reads the audit log, its store, or verdicts
+    "artefacts.history_html",  # history.html, its charts, the command
     "outputs",
     "examples",
     "examples.bike_share_demand",  # the invented demo data; other examples build on it

@@ -34,7 +34,6 @@ from gate.artefacts.audit import (
     store_path,
     verify_chain,
 )
-from gate.artefacts.files import write_atomic
 from gate.errors import GateError, OutputError
 
 HISTORY_VERSION = 1
@@ -581,46 +580,3 @@ def history_document(history: History) -> dict[str, Any]:
         "exit_code": history.exit_code,
         "groups": groups,
     }
-
-
-def write_history(history: History, out_dir: str | Path) -> list[Path]:
-    """Write history.json and history.html into ``out_dir`` (each atomically)."""
-    from gate.artefacts.history_html import history_html
-
-    folder = Path(out_dir)
-    try:
-        text = json.dumps(history_document(history), indent=1, allow_nan=False,
-                          ensure_ascii=False) + "\n"
-        written = [write_atomic(folder / "history.json", text)]
-        written.append(write_atomic(folder / "history.html", history_html(history)))
-    except OSError as exc:
-        if isinstance(exc, OutputError):
-            raise
-        raise OutputError(f"{folder}: cannot write the history ({exc.strerror or exc}); "
-                          "choose a writable --out folder") from None
-    return written
-
-
-def run_history(source: str | Path, out_dir: str | Path, *, horizon: int = 30,
-                since: str | None = None, until: str | None = None,
-                label: str | None = None, today: dt.date | None = None,
-                quiet: bool = False) -> int:
-    """`gate history`: build, write, print one summary line; return the exit code."""
-    import sys
-
-    history = build_history(source, horizon=horizon, since=since, until=until, label=label,
-                            today=today)
-    written = write_history(history, out_dir)
-    runs = sum(len(g.runs) for g in history.groups)
-    if not quiet:
-        print(f"{runs} run{'s' if runs != 1 else ''} in {len(history.groups)} group"
-              f"{'s' if len(history.groups) != 1 else ''}; wrote "
-              f"{', '.join(str(p) for p in written)}")
-        if history.chain is not None and not history.chain.chain_ok:
-            print(f"gate: audit chain broken: {history.chain.describe()}", file=sys.stderr)
-        if history.record_problems:
-            first = history.record_problems[0]
-            more = len(history.record_problems) - 1
-            print(f"gate: record incomplete: line {first['line']}: {first['problem']}"
-                  f"{f' (and {more} more)' if more else ''}", file=sys.stderr)
-    return history.exit_code

@@ -1,4 +1,5 @@
-"""history.html: the history as one static page with inline SVG charts.
+"""history.html (and the `gate history` command): the history as one static page with inline
+SVG charts, beside history.json.
 
 No JavaScript, no requests: the page carries the same Content-Security-Policy as summary.html.
 Charts are drawn by matplotlib's SVG backend (imported here only, so `gate check` never loads
@@ -11,24 +12,31 @@ shape and by words in every table.
 
 from __future__ import annotations
 
+import datetime as dt
 import html
 import io
+import json
 import math
 from collections.abc import Sequence
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from gate.artefacts.files import write_atomic
 from gate.artefacts.history import (
     Group,
     History,
     breached_features,
+    build_history,
     changes,
     describe_identity,
+    history_document,
     policy_changes,
     vif_series,
     waiver_rows,
 )
+from gate.errors import OutputError
 
 CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:"
 #: Okabe–Ito colours.
@@ -444,3 +452,44 @@ def _vif_svg(group: Group, names: list[str], series: np.ndarray, number: int) ->
             return _svg(figure, f"vif-{number}")
         finally:
             plt.close(figure)
+
+
+def write_history(history: History, out_dir: str | Path) -> list[Path]:
+    """Write history.json and history.html into ``out_dir`` (each atomically)."""
+    folder = Path(out_dir)
+    try:
+        text = json.dumps(history_document(history), indent=1, allow_nan=False,
+                          ensure_ascii=False) + "\n"
+        written = [write_atomic(folder / "history.json", text)]
+        written.append(write_atomic(folder / "history.html", history_html(history)))
+    except OSError as exc:
+        if isinstance(exc, OutputError):
+            raise
+        raise OutputError(f"{folder}: cannot write the history ({exc.strerror or exc}); "
+                          "choose a writable --out folder") from None
+    return written
+
+
+def run_history(source: str | Path, out_dir: str | Path, *, horizon: int = 30,
+                since: str | None = None, until: str | None = None,
+                label: str | None = None, today: dt.date | None = None,
+                quiet: bool = False) -> int:
+    """`gate history`: build, write, print one summary line; return the exit code."""
+    import sys
+
+    history = build_history(source, horizon=horizon, since=since, until=until, label=label,
+                            today=today)
+    written = write_history(history, out_dir)
+    runs = sum(len(g.runs) for g in history.groups)
+    if not quiet:
+        print(f"{runs} run{'s' if runs != 1 else ''} in {len(history.groups)} group"
+              f"{'s' if len(history.groups) != 1 else ''}; wrote "
+              f"{', '.join(str(p) for p in written)}")
+        if history.chain is not None and not history.chain.chain_ok:
+            print(f"gate: audit chain broken: {history.chain.describe()}", file=sys.stderr)
+        if history.record_problems:
+            first = history.record_problems[0]
+            more = len(history.record_problems) - 1
+            print(f"gate: record incomplete: line {first['line']}: {first['problem']}"
+                  f"{f' (and {more} more)' if more else ''}", file=sys.stderr)
+    return history.exit_code
