@@ -171,7 +171,7 @@ def _commit(verdict: Verdict, plan: OutputPlan, data: bytes, junit_text: str | N
         if plan.audit_log is not None:
             from gate.artefacts.audit import append_entry
 
-            entry = append_entry(plan.audit_log, verdict, hashlib.sha256(data).hexdigest())
+            entry = append_entry(plan.audit_log, data)  # also keeps the verdict beside the log
         write_atomic(stage / MANIFEST, _manifest(verdict, plan, stage, junit_text, entry))
         fsync_folder(stage)
         old = swap_folder(stage, folder)

@@ -178,6 +178,16 @@ def _guarded(compute: Any, old_name: str, new_name: str) -> Any:
                         "files that `gate check` wrote") from None
 
 
+def finding_key(finding: dict[str, Any]) -> FindingKey:
+    """The stable identity of a verdict.json finding: (rule, subject, sorted features,
+    segment). `gate diff` and `gate history` match findings across runs by it."""
+    features = finding.get("features")
+    names = tuple(sorted(str(f) for f in features)) if isinstance(features, list) else ()
+    segment = finding.get("segment")
+    return (str(finding.get("rule")), _subject_of(finding), names,
+            None if segment is None else str(segment))
+
+
 def _subject_of(finding: dict[str, Any]) -> str:
     """The subject kind; verdicts written before it was recorded get it from the rule."""
     subject = finding.get("subject")
@@ -195,10 +205,7 @@ def _findings(document: dict[str, Any], name: str) -> dict[FindingKey, dict[str,
         if not isinstance(finding, dict) or not isinstance(finding.get("features", []), list):
             raise GateError(f"{name}: a finding is not an object with a 'features' list; pass "
                             "the verdict.json that `gate check` wrote")
-        segment = finding.get("segment")
-        key: FindingKey = (str(finding.get("rule")), _subject_of(finding),
-                           tuple(sorted(map(str, finding.get("features", [])))),
-                           None if segment is None else str(segment))
+        key = finding_key(finding)
         if key in out:  # two findings with one identity (e.g. two diffuse indices)
             count = sum(1 for k in out if k[:3] == key[:3] and k[3] == key[3])
             key = (key[0], key[1], (*key[2], f"#{count + 1}"), key[3])
