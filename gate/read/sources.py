@@ -100,28 +100,47 @@ def _hash_file(path: Path) -> str:
 
 
 class ParquetSource:
-    """A Parquet file, or a folder of Parquet files read in sorted order, row group by group."""
+    """A Parquet file, or a folder of Parquet files read in sorted order, row group by group.
 
-    def __init__(self, path: Path) -> None:
+    ``name`` is how messages show the table (default: ``path`` as given); the files are opened
+    by absolute path (``self.path``), which is also what the Dask engine ships to workers.
+    """
+
+    def __init__(self, path: Path, name: str | None = None) -> None:
         import pyarrow.parquet as pq
 
-        self.name = str(path)
-        self._root = path if path.is_dir() else None
-        files = sorted(path.rglob("*.parquet")) if path.is_dir() else [path]
+        self.name = str(path) if name is None else name
+        self.path = path.absolute()
+        self._root = self.path if self.path.is_dir() else None
+        files = sorted(self.path.rglob("*.parquet")) if self._root else [self.path]
         if not files:
-            raise TableError(f"{path}: folder holds no .parquet files; point TABLE at a file "
-                             "or a folder of Parquet files")
+            raise TableError(f"{self.name}: folder holds no .parquet files; point TABLE at a "
+                             "file or a folder of Parquet files")
         try:
             self._files = [pq.ParquetFile(f, pre_buffer=False, buffer_size=PARQUET_BUFFER_BYTES)
                            for f in files]
         except (pa.ArrowException, OSError) as exc:
-            raise TableError(f"{path}: not a readable Parquet file ({_first_line(exc)})") from None
+            raise TableError(f"{self.name}: not a readable Parquet file ({_first_line(exc)})"
+                             ) from None
         self._paths = files
+        #: Each file as messages show it (under the table's display name).
+        self.display_paths = [self.display_path(f) for f in files]
         schemas = {f.schema_arrow for f in self._files}
         if len(schemas) > 1:
-            raise TableError(f"{path}: the Parquet files do not share one schema; "
+            raise TableError(f"{self.name}: the Parquet files do not share one schema; "
                              "rewrite them with the same columns and types")
         self._schema = self._files[0].schema_arrow
+
+    @property
+    def files(self) -> list[Path]:
+        """The Parquet files, by absolute path, in reading order."""
+        return list(self._paths)
+
+    def display_path(self, file: Path) -> str:
+        """A file of this table (absolute path) as messages show it."""
+        if self._root is None:
+            return self.name
+        return str(Path(self.name) / file.relative_to(self._root))
 
     @property
     def columns(self) -> tuple[Column, ...]:
@@ -136,9 +155,9 @@ class ParquetSource:
 
     def chunks(self, columns: Sequence[str], chunk_rows: int = DEFAULT_CHUNK_ROWS
                ) -> Iterator[pa.Table]:
-        for file, path in zip(self._files, self._paths):
+        for file, shown in zip(self._files, self.display_paths):
             for group in range(file.metadata.num_row_groups):
-                yield from row_group_chunks(file, group, columns, chunk_rows, path)
+                yield from row_group_chunks(file, group, columns, chunk_rows, shown)
 
 
 def row_group_chunks(file: Any, group: int, columns: Sequence[str], chunk_rows: int,
@@ -165,8 +184,14 @@ def row_group_chunks(file: Any, group: int, columns: Sequence[str], chunk_rows: 
 class _SingleFileSource:
     """Shared by CSV and Arrow IPC sources: one file, schema known, row count unknown."""
 
+    name: str
     _path: Path
     _schema: pa.Schema
+
+    @property
+    def path(self) -> Path:
+        """The file by absolute path (messages show ``name``)."""
+        return self._path
 
     @property
     def columns(self) -> tuple[Column, ...]:
@@ -183,17 +208,18 @@ class _SingleFileSource:
 class CsvSource(_SingleFileSource):
     """A CSV file read in blocks by pyarrow's streaming reader."""
 
-    def __init__(self, path: Path) -> None:
+    def __init__(self, path: Path, name: str | None = None) -> None:
         import pyarrow.csv as pacsv
 
-        self.name = str(path)
-        self._path = path
+        self.name = str(path) if name is None else name
+        self._path = path.absolute()
         self._csv = pacsv
         try:
             with self._open(1 << 20, None) as reader:
                 inferred = reader.schema
         except (pa.ArrowException, OSError) as exc:
-            raise TableError(f"{path}: not a readable CSV file ({_first_line(exc)})") from None
+            raise TableError(f"{self.name}: not a readable CSV file ({_first_line(exc)})"
+                             ) from None
         # Types come from the first block; widen integers (and all-empty columns) to float so a
         # later block with decimals or blanks does not break the stream.
         self._schema = pa.schema([
@@ -219,7 +245,7 @@ class CsvSource(_SingleFileSource):
                 for batch in reader:
                     yield pa.Table.from_batches([batch])
         except pa.ArrowInvalid as exc:
-            raise TableError(f"{self._path}: a value does not match its column's type "
+            raise TableError(f"{self.name}: a value does not match its column's type "
                              f"({_first_line(exc)}); clean the file or exclude the column"
                              ) from None
 
@@ -227,14 +253,14 @@ class CsvSource(_SingleFileSource):
 class ArrowSource(_SingleFileSource):
     """An Arrow IPC file (Feather v2) or stream, memory-mapped and read batch by batch."""
 
-    def __init__(self, path: Path) -> None:
-        self.name = str(path)
-        self._path = path
+    def __init__(self, path: Path, name: str | None = None) -> None:
+        self.name = str(path) if name is None else name
+        self._path = path.absolute()
         try:
-            with pa.memory_map(str(path)) as source:
+            with pa.memory_map(str(self._path)) as source:
                 self._schema = self._reader(source).schema
         except (pa.ArrowException, OSError) as exc:
-            raise TableError(f"{path}: not a readable Arrow IPC/Feather file "
+            raise TableError(f"{self.name}: not a readable Arrow IPC/Feather file "
                              f"({_first_line(exc)})") from None
 
     @staticmethod
@@ -346,19 +372,23 @@ def open_table(table: Any) -> TableSource:
                      "a pandas DataFrame, a pyarrow Table or a dask DataFrame")
 
 
-def open_path(path: Path) -> TableSource:
+def open_path(path: Path, name: str | None = None) -> TableSource:
+    """A table file or Parquet folder. Messages call it ``name`` (default: ``path`` as given);
+    it is opened by absolute path, so a later change of working directory, or a Dask worker
+    started elsewhere, reads the same file."""
+    shown = str(path) if name is None else name
     if not path.exists():
-        raise TableError(f"{path}: table file not found; check the path")
+        raise TableError(f"{shown}: table file not found; check the path")
     if path.is_dir():
-        return ParquetSource(path)
+        return ParquetSource(path, shown)
     kind = SUFFIXES.get(path.suffix.lower())
     if kind == "parquet":
-        return ParquetSource(path)
+        return ParquetSource(path, shown)
     if kind == "csv":
-        return CsvSource(path)
+        return CsvSource(path, shown)
     if kind == "arrow":
-        return ArrowSource(path)
-    raise TableError(f"{path}: unknown table format '{path.suffix}'; use .parquet, .csv, "
+        return ArrowSource(path, shown)
+    raise TableError(f"{shown}: unknown table format '{path.suffix}'; use .parquet, .csv, "
                      ".feather or .arrow")
 
 
