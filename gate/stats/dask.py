@@ -12,8 +12,9 @@ Partitions: a dask DataFrame's own partitions; for a path, one per Parquet row g
 or a folder of files), one per group of Arrow IPC record batches, one for a CSV file (CSV
 cannot be split without scanning it). Workers read the files themselves, by absolute path (a
 worker's working directory is its own), so on a real cluster the path must be visible to
-every worker, and every worker needs collinearity-gate installed. A worker that cannot open
-the path is reported as unusable input naming the path, not as a crash.
+every worker; the scheduler (which unpickles the task graph) and every worker need the same
+collinearity-gate installed. A worker that cannot open the path is reported as unusable input
+naming the path, not as a crash.
 
 Errors: a task never raises a GateError on the worker (the worker would log it with its
 traceback on its stderr, which for a local cluster is the user's terminal). It returns a
