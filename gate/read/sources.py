@@ -195,35 +195,53 @@ def _hash_file(path: Path) -> str:
 
 
 class ParquetSource:
-    """A Parquet file, or a folder of Parquet files read in sorted order, row group by group."""
+    """A Parquet file, or a folder of Parquet files read in sorted order, row group by group.
 
-    def __init__(self, path: Path) -> None:
+    ``name`` is how messages show the table (default: ``path`` as given); the files are opened
+    by absolute path (``self.path``), which is also what the Dask engine ships to workers.
+    """
+
+    def __init__(self, path: Path, name: str | None = None) -> None:
         import pyarrow.parquet as pq
 
-        self.name = str(path)
-        self._root = path if path.is_dir() else None
-        files = _parquet_files(path) if path.is_dir() else [path]
+        self.name = str(path) if name is None else name
+        self.path = path.absolute()
+        self._root = self.path if self.path.is_dir() else None
+        files = _parquet_files(self.path) if self._root else [self.path]
         if not files:
-            raise TableError(f"{path}: folder holds no .parquet files; point TABLE at a file "
-                             "or a folder of Parquet files")
+            raise TableError(f"{self.name}: folder holds no .parquet files; point TABLE at a "
+                             "file or a folder of Parquet files")
         self._files = []
         for file in files:  # one at a time, so that an error names the bad file
             try:
                 self._files.append(pq.ParquetFile(file, pre_buffer=False,
                                                   buffer_size=PARQUET_BUFFER_BYTES))
             except PermissionError:
-                raise TableError(f"{file}: permission denied; make the Parquet file readable "
-                                 "by this user") from None
+                raise TableError(f"{self.display_path(file)}: permission denied; make the "
+                                 "Parquet file readable by this user") from None
             except (pa.ArrowException, OSError) as exc:
-                raise TableError(f"{file}: not a readable Parquet file ({_first_line(exc)})"
-                                 ) from None
+                raise TableError(f"{self.display_path(file)}: not a readable Parquet file "
+                                 f"({_first_line(exc)})") from None
         self._paths = files
+        #: Each file as messages show it (under the table's display name).
+        self.display_paths = [self.display_path(f) for f in files]
         schemas = {f.schema_arrow for f in self._files}
         if len(schemas) > 1:
-            raise TableError(f"{path}: the Parquet files do not share one schema; "
+            raise TableError(f"{self.name}: the Parquet files do not share one schema; "
                              "rewrite them with the same columns and types")
         self._schema = self._files[0].schema_arrow
         require_unique_names(self._schema.names, str(path))
+
+    @property
+    def files(self) -> list[Path]:
+        """The Parquet files, by absolute path, in reading order."""
+        return list(self._paths)
+
+    def display_path(self, file: Path) -> str:
+        """A file of this table (absolute path) as messages show it."""
+        if self._root is None:
+            return self.name
+        return str(Path(self.name) / file.relative_to(self._root))
 
     @property
     def columns(self) -> tuple[Column, ...]:
@@ -238,9 +256,9 @@ class ParquetSource:
 
     def chunks(self, columns: Sequence[str], chunk_rows: int = DEFAULT_CHUNK_ROWS
                ) -> Iterator[pa.Table]:
-        for file, path in zip(self._files, self._paths):
+        for file, label in zip(self._files, self.display_paths):
             for group in range(file.metadata.num_row_groups):
-                yield from row_group_chunks(file, group, columns, chunk_rows, path)
+                yield from row_group_chunks(file, group, columns, chunk_rows, label)
 
 
 def row_group_chunks(file: Any, group: int, columns: Sequence[str], chunk_rows: int,
@@ -269,8 +287,14 @@ def row_group_chunks(file: Any, group: int, columns: Sequence[str], chunk_rows: 
 class _SingleFileSource:
     """Shared by CSV and Arrow IPC sources: one file, schema known, row count unknown."""
 
+    name: str
     _path: Path
     _schema: pa.Schema
+
+    @property
+    def path(self) -> Path:
+        """The file by absolute path (messages show ``name``)."""
+        return self._path
 
     @property
     def columns(self) -> tuple[Column, ...]:
@@ -353,12 +377,12 @@ class CsvSource(_SingleFileSource):
     ``categorical``: those are always read as text.
     """
 
-    def __init__(self, path: Path, *, delimiter: str | None = None,
+    def __init__(self, path: Path, name: str | None = None, *, delimiter: str | None = None,
                  categorical: Collection[str] = ()) -> None:
         import pyarrow.csv as pacsv
 
-        self.name = str(path)
-        self._path = path
+        self.name = str(path) if name is None else name
+        self._path = path.absolute()
         self._csv = pacsv
         self._delimiter = delimiter
         self._check_encoding()
@@ -508,14 +532,14 @@ class CsvSource(_SingleFileSource):
 class ArrowSource(_SingleFileSource):
     """An Arrow IPC file (Feather v2) or stream, memory-mapped and read batch by batch."""
 
-    def __init__(self, path: Path) -> None:
-        self.name = str(path)
-        self._path = path
+    def __init__(self, path: Path, name: str | None = None) -> None:
+        self.name = str(path) if name is None else name
+        self._path = path.absolute()
         try:
-            with pa.memory_map(str(path)) as source:
+            with pa.memory_map(str(self._path)) as source:
                 self._schema = self._reader(source).schema
         except (pa.ArrowException, OSError) as exc:
-            raise TableError(f"{path}: not a readable Arrow IPC/Feather file "
+            raise TableError(f"{self.name}: not a readable Arrow IPC/Feather file "
                              f"({_first_line(exc)})") from None
         require_unique_names(self._schema.names, str(path))
 
@@ -645,23 +669,27 @@ def open_table(table: Any, *, csv_delimiter: str | None = None,
                      "a pandas DataFrame, a pyarrow Table or a dask DataFrame")
 
 
-def open_path(path: Path, *, csv_delimiter: str | None = None,
+def open_path(path: Path, name: str | None = None, *, csv_delimiter: str | None = None,
               categorical: Collection[str] = ()) -> TableSource:
+    """A table file or Parquet folder. Messages call it ``name`` (default: ``path`` as given);
+    it is opened by absolute path, so a later change of working directory, or a Dask worker
+    started elsewhere, reads the same file."""
+    label = str(path) if name is None else name
     info = regular_file_or_folder(path, "table file")
     if stat.S_ISDIR(info.st_mode) and path.suffix == ".gate":
-        raise TableError(f"{path}: is an output folder of `gate check-files` (<file>.gate), "
+        raise TableError(f"{label}: is an output folder of `gate check-files` (<file>.gate), "
                          "not a table; pass the table file itself")
     kind = "parquet" if stat.S_ISDIR(info.st_mode) else SUFFIXES.get(path.suffix.lower())
     if csv_delimiter is not None and kind != "csv":
-        raise TableError(f"{path}: --csv-delimiter applies to .csv tables only; drop it")
+        raise TableError(f"{label}: --csv-delimiter applies to .csv tables only; drop it")
     if kind == "parquet":
-        return ParquetSource(path)
+        return ParquetSource(path, label)
     if kind == "csv":
         delimiter = None if csv_delimiter is None else csv_delimiter_char(csv_delimiter)
-        return CsvSource(path, delimiter=delimiter, categorical=categorical)
+        return CsvSource(path, label, delimiter=delimiter, categorical=categorical)
     if kind == "arrow":
-        return ArrowSource(path)
-    raise TableError(f"{path}: unknown table format '{shown(path.suffix)}'; use .parquet, .csv, "
+        return ArrowSource(path, label)
+    raise TableError(f"{label}: unknown table format '{shown(path.suffix)}'; use .parquet, .csv, "
                      ".feather or .arrow")
 
 
