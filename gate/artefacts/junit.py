@@ -3,8 +3,10 @@
 Layout (the widely used JUnit XML conventions: ``testsuites > testsuite > testcase``):
 
 * one ``testcase`` per rule and subject: every finding is a test case named
-  ``rule[subject]`` (subject = the features involved, or ``design``); every enabled rule
-  without findings is one passing test case ``rule[all features]``; a rule turned off by the
+  ``rule[subject]`` (subject = the features involved in design order, the segment, or
+  ``design``), so names are stable across runs; every enabled rule with no fail or warn
+  finding left (none, or all waived or information) also has one passing test case
+  ``rule[all features]``, so dashboards show every check that ran; a rule turned off by the
   policy is one skipped test case;
 * a fail finding carries ``<failure>``; a warning passes but says so in ``<system-out>``
   (shown by most CI systems) and in a suite property ``warning.N``; a waived finding is
@@ -26,6 +28,7 @@ from collections import Counter
 from pathlib import Path
 
 from gate.artefacts.files import write_atomic
+from gate.errors import shown
 from gate.judge.findings import Finding
 from gate.judge.verdict import Verdict
 from gate.policy.models import RULES
@@ -45,7 +48,7 @@ def junit_xml(verdict: Verdict) -> str:
     names: Counter[str] = Counter()
     warnings: list[str] = []
     counts = Counter[str]()
-    with_findings = {f.rule for f in verdict.findings}
+    with_findings = {f.rule for f in verdict.findings if f.counts}
     limits = verdict.policy.limits.model_dump()
 
     by_rule: dict[str, list[Finding]] = {}
@@ -59,19 +62,21 @@ def junit_xml(verdict: Verdict) -> str:
                 case.append(_element("skipped", message=_waiver_text(verdict, finding)))
                 counts["skipped"] += 1
             elif finding.level == "fail":
-                failure = _element("failure", message=finding.message,
+                failure = _element("failure", message=shown(finding.message, None),
                                    type=f"{finding.rule}.fail")
                 failure.text = _clean(_details(finding))
                 case.append(failure)
                 counts["failures"] += 1
             elif finding.level == "warn":
-                warnings.append(f"{finding.rule}[{_subject(finding)}]: {finding.message}")
+                warnings.append(f"{finding.rule}[{_subject(finding)}]: "
+                                f"{shown(finding.message, None)}")
                 out = ET.SubElement(case, "system-out")
-                out.text = _clean(f"WARNING (does not fail the gate): {finding.message}\n"
+                out.text = _clean(f"WARNING (does not fail the gate): "
+                                  f"{shown(finding.message, None)}\n"
                                   + _details(finding))
             else:
                 out = ET.SubElement(case, "system-out")
-                out.text = _clean(f"{finding.level.upper()}: {finding.message}")
+                out.text = _clean(f"{finding.level.upper()}: {shown(finding.message, None)}")
             cases.append(case)
         rest = findings[MAX_CASES_PER_RULE:]
         if rest:
@@ -149,8 +154,8 @@ def _case(rule: str, subject: str, names: Counter[str]) -> ET.Element:
 
 def _subject(finding: Finding) -> str:
     if finding.subject == "segment" and finding.segment is not None:
-        return finding.segment
-    return ", ".join(finding.features) or "design"
+        return shown(finding.segment, None)
+    return ", ".join(shown(name, None) for name in finding.features) or "design"
 
 
 def _details(finding: Finding) -> str:
