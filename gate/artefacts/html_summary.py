@@ -34,6 +34,7 @@ from gate.judge.rules import (
     index_breaches,
 )
 from gate.numerics.kernels import INTERCEPT
+from gate.policy.models import packaged_policy_path
 
 if TYPE_CHECKING:
     from great_tables import GT
@@ -408,9 +409,10 @@ def _suggest_command(verdict: Verdict) -> str | None:
         return None  # an in-memory table: there is no path to pass
     parts = ["gate", "suggest", shlex.quote(verdict.table.source)]
     source = verdict.policy.source
-    packaged = Path(__file__).resolve().parents[1]
-    if source and packaged not in Path(source).resolve().parents:
-        parts += ["--policy", shlex.quote(source)]
+    if not source or not Path(source).is_file():
+        return None  # a policy given as text: the command cannot name it
+    if Path(source).resolve() != packaged_policy_path().resolve():
+        parts += ["--policy", shlex.quote(source)]  # the packaged default needs no --policy
     return " ".join(parts)
 
 
