@@ -53,8 +53,9 @@ MAX_MISSING_ROWS = 200
 #: above this, for breaching features only (a term under 0.05 moves the feature by less than a
 #: twentieth of a standard deviation per standard deviation: common practice, no source).
 EXPLAINED_MIN = 0.05
-#: The colour-scaled correlation matrix is drawn only up to this many features.
-MAX_MATRIX_FEATURES = 40
+#: The colour-scaled correlation matrix is drawn in full up to this many features (wider
+#: designs: the features named by findings, up to as many), so it fits 1280 px.
+MAX_MATRIX_FEATURES = 20
 #: Condition-index table: design columns (rows) shown, and condition indices (columns) shown:
 #: every breaching index up to the maximum, plus one below the limit for contrast, at least
 #: the minimum.
@@ -159,6 +160,7 @@ code { font-family: ui-monospace, "DejaVu Sans Mono", "Liberation Mono", monospa
   font-size: 12px; overflow-wrap: anywhere; }
 #findings td:first-child, #findings td.gt_right, #features td.gt_right, #pairs td,
 #condition td, #waivers td:first-child { white-space: nowrap; }
+#sec-matrix #matrix .gt_stub { max-width: 18em; white-space: normal; overflow-wrap: anywhere; }
 footer { padding: 0 28px 24px; color: #6a7080; font-size: 12px; }
 """
 
@@ -654,23 +656,44 @@ def _pairs_section(verdict: Verdict) -> str:
     return _fragment(table) + _hidden_note(len(rows), total, "pairs")
 
 
+def _matrix_features(verdict: Verdict) -> list[int]:
+    """Design columns drawn: all when they fit, else those named by findings (design order)."""
+    names = verdict.features
+    if len(names) <= MAX_MATRIX_FEATURES:
+        return list(range(len(names)))
+    position = {name: k for k, name in enumerate(names)}
+    groups = {g.column: g.indices for g in verdict.design.groups}
+    named: set[int] = set()
+    for f in verdict.findings:
+        if f.subject in ("waiver", "segment"):
+            continue
+        for name in f.features:
+            if name in position:
+                named.add(position[name])
+            named.update(groups.get(name, ()))
+    return sorted(named)[:MAX_MATRIX_FEATURES]
+
+
 def _matrix_section(verdict: Verdict) -> str:
     names = verdict.features
-    p = len(names)
-    if p > MAX_MATRIX_FEATURES:
-        return _note(f"The matrix is drawn for at most {MAX_MATRIX_FEATURES} features; this "
-                     f"design has {p:,}. The pairs above and verdict.json hold the strong "
-                     "correlations.")
-    if p < 2:
+    chosen = _matrix_features(verdict)
+    p = len(chosen)
+    subset = p < len(names)
+    if len(names) < 2:
         return _note("Fewer than two features: no correlations.")
+    if p < 2:
+        return _note(f"The full matrix is drawn for at most {MAX_MATRIX_FEATURES} features; "
+                     f"this design has {len(names):,} and no finding names two of them. "
+                     "verdict.json (with --full-matrices, matrices.npz) holds every "
+                     "correlation.")
     import pandas as pd
     from great_tables import GT
 
-    corr = verdict.diagnostics.correlation
+    corr = verdict.diagnostics.correlation[np.ix_(chosen, chosen)]
     keys = [f"c{k}" for k in range(p)]
     frame = pd.DataFrame(np.round(corr, 6), columns=keys)
     # Numbered columns keep the matrix narrow; the row labels carry number and name.
-    frame.insert(0, "feature", [f"{k + 1}. {name}" for k, name in enumerate(names)])
+    frame.insert(0, "feature", [f"{k + 1}. {names[c]}" for k, c in enumerate(chosen)])
     table = GT(frame, rowname_col="feature", id="matrix")
     table = table.cols_label(cases={key: str(k + 1) for k, key in enumerate(keys)})
     table = table.fmt_number(columns=keys, decimals=2).sub_missing(columns=keys,
@@ -682,6 +705,10 @@ def _matrix_section(verdict: Verdict) -> str:
         "Pearson r between design columns (column k is the feature numbered k): blue "
         "negative, red positive, the number printed in every cell. \u2014: a constant column "
         "has no correlation.")
+    if subset:
+        table = table.tab_source_note(
+            f"This design has {len(names):,} features, more than the {MAX_MATRIX_FEATURES} "
+            f"drawn in full: shown are the {p} named by findings, in design order.")
     return _fragment(table)
 
 
@@ -712,7 +739,7 @@ def _condition_section(verdict: Verdict) -> str:
     for k, key in zip(shown, keys):
         value = _num(float(cond.indices[k]), 1)
         over = k in breaching
-        labels[key] = (f"{value} {_LEVEL_MARK[limit.level].split()[0]}"
+        labels[key] = (f"{value} {_LEVEL_MARK[limit.level]}"
                        if over and limit.level != "off" else value)
     rows: list[dict[str, Any]] = []
     marked: dict[str, list[int]] = {key: [] for key in keys}
