@@ -284,14 +284,20 @@ def test_missing_counts_and_caution(docks_page: str) -> None:
     assert "credit, insurance, hiring" in caution and "model-risk policy" in caution
 
 
-def test_matrix_shown_for_small_designs_only(docks_page: str,
-                                             monkeypatch: pytest.MonkeyPatch,
-                                             docks_verdict: Verdict) -> None:
+def test_matrix_full_for_small_designs_else_features_named_by_findings(
+        docks_page: str, monkeypatch: pytest.MonkeyPatch, docks_verdict: Verdict) -> None:
     assert 'id="matrix"' in docks_page
+    full = _body_rows(docks_page, "matrix")
+    assert len(full) == len(docks_verdict.features)
     monkeypatch.setattr(summary, "MAX_MATRIX_FEATURES", 3)
     page = summary_html(docks_verdict)
-    assert 'id="matrix"' not in page
-    assert "at most 3 features" in _text(_section(page, "matrix"))
+    rows = _body_rows(page, "matrix")
+    # the first three design columns named by a finding: docks_free, docks_in_use, docks_total
+    assert [row.split()[1] for row in rows] == ["docks_free", "docks_in_use", "docks_total"]
+    assert "more than the 3 drawn in full" in _text(_section(page, "matrix"))
+    clean = check(make_clean_frame(), today=TODAY)
+    assert len(clean.features) > 3 and not clean.findings
+    assert "no finding names two of them" in _text(_section(summary_html(clean), "matrix"))
 
 
 def test_long_tables_are_capped_breaches_first(docks_verdict: Verdict,
