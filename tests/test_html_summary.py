@@ -177,9 +177,10 @@ def test_next_step_names_the_cause_and_the_command(docks_page: str, tmp_path: Pa
     steps = " ".join(_text(docks_page[start:docks_page.index("</div>", start)]).split())
     assert "Resolve the" in steps and "exact dependencies first" in steps
     assert "gate suggest on the table file" in steps  # an in-memory table has no path
-    table = write_table(make_docks_frame(), "docks yard.parquet")
+    table = write_table(make_docks_frame(), "docks <yard> & co.parquet")
     run_cli(["check", table, "--out", tmp_path / "out"])
     page = (tmp_path / "out" / "summary.html").read_text(encoding="utf-8")
+    assert "<yard>" not in page  # the path is escaped wherever it appears
     code = re.search(r'id="next-step".*?<code>(.*?)</code>', page, re.DOTALL)
     assert code is not None
     # quoted for a shell; no --policy for the packaged default
@@ -359,4 +360,5 @@ def test_wide_design_stays_small() -> None:
     assert breaches >= 20  # the ten planted pairs
     shown = breaches + summary.MAX_QUIET_FEATURE_ROWS
     assert f"Showing {shown} of 400 features and groups" in _text(_section(page, "features"))
-    assert 'id="matrix"' not in page
+    matrix = _body_rows(page, "matrix")  # only the 20 planted features, named by findings
+    assert [row.split()[1] for row in matrix] == [f"sensor_{k:03d}" for k in range(20)]
