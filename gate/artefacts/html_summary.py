@@ -10,8 +10,13 @@ page either as a plain great-tables cell, label or note (great-tables escapes th
 ``html.escape`` in this module. No ``fmt(...)`` callable, ``html()`` or ``md()`` is used, because
 great-tables trusts their output as markup. The CSP meta tag is a second line of defence.
 
-Size: rows are capped (breaches first) so a 2,000-feature table stays a few MB; verdict.json
-keeps every number.
+Size and speed: great-tables 1.1 escapes every unformatted cell with one pandas ``.iloc`` write,
+about 1.4-2 ms per cell on the development box (linear in cells, plus ~50 ms per table), so the
+tables show what a reader acts on and cap the rest (breaches first; verdict.json keeps every
+number). A pyarrow input is about twice as fast but great-tables marks it experimental (it
+warns), so pandas stays the input. On a 3,000 x 2,000-feature verdict the page went from
+3,374 cells, 5.2 s, 418 KB to 1,244 cells, 2.8 s, 216 KB when this layout replaced the
+previous one.
 """
 
 from __future__ import annotations
