@@ -187,6 +187,26 @@ def test_next_step_names_the_cause_and_the_command(docks_page: str, tmp_path: Pa
     assert html.unescape(code.group(1)) == f"gate suggest '{table}'"
 
 
+def test_capped_findings_keep_information_findings(monkeypatch: pytest.MonkeyPatch) -> None:
+    stale = policy_from("""
+policy_version: 1
+name: stale waiver
+waivers:
+  - rule: vif
+    features: [wind_kmh]
+    reason: kept from last season
+    owner: ops
+    expires: 2099-01-31
+""")
+    verdict = check(make_docks_frame(), stale, today=TODAY)
+    info = [f for f in verdict.findings if f.level == "info" and not f.waived]
+    assert len(info) == 1 and info[0].subject == "waiver"
+    monkeypatch.setattr(summary, "MAX_FINDING_ROWS", 2)
+    rows = _body_rows(summary_html(verdict), "findings")
+    assert len(rows) == 3 and "info" in rows[-1] and "stale" in rows[-1]
+    assert all("fail" in row for row in rows[:2])
+
+
 def test_waiver_column_only_when_a_waiver_applies(docks_page: str) -> None:
     head = _section(docks_page, "findings")
     assert "Waiver (owner: reason, expiry)" in head  # the active pair waiver applies

@@ -31,7 +31,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from gate.artefacts.files import write_atomic
-from gate.judge.findings import LEVELS, Finding, counts_text, unwaived
+from gate.judge.findings import LEVELS, Finding, counts_text
 from gate.judge.rules import (
     INTERCEPT_NAME,
     describe_dependency,
@@ -432,7 +432,10 @@ def _findings_section(verdict: Verdict) -> str:
     else:
         parts.append(_next_steps(verdict))
         grouped = _finding_rows(findings)
-        shown = grouped[:MAX_FINDING_ROWS]
+        # Capped for size, but information findings carry advice: they are never cut.
+        shown = grouped[:MAX_FINDING_ROWS] + [
+            row for row in grouped[MAX_FINDING_ROWS:] if row[0].level == "info"
+            and not row[0].waived]
         rows: list[dict[str, Any]] = []
         marks: dict[str, list[int]] = {"fail": [], "warn": [], "waived": []}
         for pos, (f, features) in enumerate(shown):
@@ -867,7 +870,7 @@ def _segments_section(verdict: Verdict) -> str:
             continue
         finite = [float(v) for v in inner.diagnostics.vif if math.isfinite(float(v))]
         worst = max(inner.diagnostics.vif.tolist(), default=1.0)
-        active = unwaived(inner.findings, "fail") + unwaived(inner.findings, "warn")
+        active = [f for f in _finding_order(inner.findings) if f.counts]  # cause first
         rows.append({
             "segment": segment.label, "rows": f"{segment.rows_used:,}",
             "status": inner.status,
