@@ -25,8 +25,9 @@ from gate.judge.verdict import Verdict
 
 TODAY = dt.date(2026, 12, 1)
 HOSTILE = "<script>alert(1)</script>"
-SECTIONS = ("verdict", "findings", "features", "pairs", "matrix", "condition", "dependencies",
-            "missing", "caution")
+#: In page order: findings first, provenance last before the caution.
+SECTIONS = ("findings", "features", "pairs", "condition", "dependencies", "matrix", "missing",
+            "provenance", "caution")
 
 HOSTILE_POLICY = """
 policy_version: 1
@@ -103,9 +104,9 @@ def test_page_is_self_contained(docks_page: str) -> None:
     assert len(parsed.ids) == len(set(parsed.ids)), "element ids must be unique"
 
 
-def test_every_section_is_present(docks_page: str) -> None:
-    for name in SECTIONS:
-        assert f'id="sec-{name}"' in docks_page
+def test_every_section_is_present_findings_first(docks_page: str) -> None:
+    positions = [docks_page.index(f'id="sec-{name}"') for name in SECTIONS]
+    assert positions == sorted(positions)
     assert docks_page.count("<section") == len(SECTIONS)
 
 
@@ -120,9 +121,16 @@ def test_user_strings_are_escaped(docks_page: str) -> None:
 
 def test_header_carries_status_in_words_and_provenance(docks_verdict: Verdict,
                                                        docks_page: str) -> None:
-    header = _text(_section(docks_page, "verdict"))
+    header = _text(_section(docks_page, "provenance"))
     assert docks_verdict.status == "fail"
-    assert "FAIL" in _text(docks_page[:docks_page.index("<main>")])
+    top = _text(docks_page[:docks_page.index("<main>")])
+    assert "FAIL" in top
+    # 11 features (9 numeric, 2 dummies) plus the intercept; a constant, a duplicate and a
+    # three-term relation: rank 9 of 12
+    d = docks_verdict.diagnostics
+    assert (d.rank, d.features + 1, len(d.dependencies)) == (9, 12, 3)
+    assert "rank 9 of 12: 3 exact dependencies" in top
+    assert 'id="verdict"' in _section(docks_page, "provenance")  # the table keeps its id
     for item in ("FAIL", docks_verdict.policy.sha256, docks_verdict.created_at,
                  docks_verdict.tool_version, f"{docks_verdict.table.rows_used:,} used",
                  "2 dropped"):
@@ -136,18 +144,101 @@ def test_findings_show_waivers_expired_and_stale(docks_page: str) -> None:
     assert "capacity_copy" in findings
 
 
+def _body_rows(page: str, name: str) -> list[str]:
+    """Body rows of the section's first table, as text."""
+    section = _section(page, name)
+    body = section[section.index("<tbody"):section.index("</tbody>")]
+    return [_text(row) for row in re.findall(r"<tr>(.*?)</tr>", body, re.DOTALL)]
+
+
+def test_findings_lead_with_causes_then_consequences(docks_verdict: Verdict,
+                                                     docks_page: str) -> None:
+    rows = _body_rows(docks_page, "findings")
+    rules = [row.split()[2] for row in rows]  # mark, level word, rule
+    fails = [rule for row, rule in zip(rows, rules) if "fail" in row.split()[1]]
+    # the exact dependencies (rank_deficiency) come before the VIFs they make infinite
+    assert fails[0] == "rank_deficiency"
+    assert fails.index("vif") > max(i for i, r in enumerate(fails) if r == "rank_deficiency")
+    infinite = [f for f in docks_verdict.findings if f.rule == "vif" and
+                f.value_kind == "infinite" and not f.waived and f.level == "fail"]
+    assert len(infinite) >= 3
+    merged = [row for row in rows if "VIF is infinite for each of these" in row]
+    assert len(merged) == 1 and all(name in merged[0] for f in infinite for name in f.features)
+    assert f"{len(docks_verdict.findings)} findings in {len(rows)} rows" in _text(
+        _section(docks_page, "findings"))
+    # waived findings come last
+    waived = [i for i, row in enumerate(rows) if "waived" in row.split()[:2]]
+    assert waived and waived == list(range(len(rows) - len(waived), len(rows)))
+
+
+def test_next_step_names_the_cause_and_the_command(docks_page: str, tmp_path: Path,
+                                                   run_cli: Any, write_table: Any) -> None:
+    start = docks_page.index('id="next-step"')
+    steps = " ".join(_text(docks_page[start:docks_page.index("</div>", start)]).split())
+    assert "Resolve the" in steps and "exact dependencies first" in steps
+    assert "gate suggest on the table file" in steps  # an in-memory table has no path
+    table = write_table(make_docks_frame(), "docks <yard> & co.parquet")
+    run_cli(["check", table, "--out", tmp_path / "out"])
+    page = (tmp_path / "out" / "summary.html").read_text(encoding="utf-8")
+    assert "<yard>" not in page  # the path is escaped wherever it appears
+    code = re.search(r'id="next-step".*?<code>(.*?)</code>', page, re.DOTALL)
+    assert code is not None
+    # quoted for a shell; no --policy for the packaged default
+    assert html.unescape(code.group(1)) == f"gate suggest '{table}'"
+
+
+def test_capped_findings_keep_information_findings(monkeypatch: pytest.MonkeyPatch) -> None:
+    stale = policy_from("""
+policy_version: 1
+name: stale waiver
+waivers:
+  - rule: vif
+    features: [wind_kmh]
+    reason: kept from last season
+    owner: ops
+    expires: 2099-01-31
+""")
+    verdict = check(make_docks_frame(), stale, today=TODAY)
+    info = [f for f in verdict.findings if f.level == "info" and not f.waived]
+    assert len(info) == 1 and info[0].subject == "waiver"
+    monkeypatch.setattr(summary, "MAX_FINDING_ROWS", 2)
+    rows = _body_rows(summary_html(verdict), "findings")
+    assert len(rows) == 3 and "info" in rows[-1] and "stale" in rows[-1]
+    assert all("fail" in row for row in rows[:2])
+
+
+def test_waiver_column_only_when_a_waiver_applies(docks_page: str) -> None:
+    head = _section(docks_page, "findings")
+    assert "Waiver (owner: reason, expiry)" in head  # the active pair waiver applies
+    rng = np.random.default_rng(4)
+    x = rng.normal(size=300)
+    frame = pd.DataFrame({"depot_km": x, "depot_miles": x / 1.609 + rng.normal(0, 0.05, 300)})
+    page = summary_html(check(frame, today=TODAY))
+    assert _body_rows(page, "findings")
+    assert "Waiver (owner" not in _section(page, "findings")
+
+
+def test_explained_by_only_for_breaching_features(docks_page: str) -> None:
+    for row in _body_rows(docks_page, "features"):
+        if "\u2714 ok" in row:  # under the limit: no auxiliary terms listed
+            assert "(+" not in row and "(\u2212" not in row, row
+        # never a negligible term (|b| < 0.05) such as "(+0.00)"
+        assert not re.search(r"\([+\u2212]0\.0[0-4]\)", row), row
+
+
 def test_per_feature_numbers_match_closed_form() -> None:
     # Two features: VIF = 1/(1 - r^2), tolerance = 1 - r^2, auxiliary R^2 = r^2, SE inflation
     # sqrt(VIF), and the standardised auxiliary coefficient on the other feature is r
     # (common practice, no source); r from numpy.corrcoef as the outside reference.
     rng = np.random.default_rng(21)
     x = rng.normal(size=500)
-    frame = pd.DataFrame({"grid_load": x, "grid_load_lag": 0.8 * x + rng.normal(0, 0.5, 500)})
+    frame = pd.DataFrame({"grid_load": x, "grid_load_lag": 0.8 * x + rng.normal(0, 0.1, 500)})
     r = float(np.corrcoef(frame["grid_load"], frame["grid_load_lag"])[0, 1])
     page = summary_html(check(frame, today=TODAY))
     features = _text(_section(page, "features"))
     vif = 1.0 / (1.0 - r * r)
-    for expected in (f"{vif:,.2f}", f"{1 - r * r:.4f}", f"{r * r:.4f}",
+    assert vif > 5  # breaches the packaged default's VIF limit, so "explained by" is shown
+    for expected in (f"{vif:,.2f}", f"{r * r:.4f}",
                      f"\u00d7{math.sqrt(vif):.2f}", f"grid_load ({r:+.2f})"):
         assert expected in features, expected
 
@@ -171,29 +262,63 @@ def test_condition_table_marks_involved_proportions() -> None:
     verdict = check(frame, today=TODAY)
     cond = verdict.diagnostics.condition
     assert cond.indices[-1] > 30  # Belsley, Kuh & Welsch (1980) limit in the default policy
+    assert cond.indices[-2] <= 30
     page = summary_html(verdict)
     section = _section(page, "condition")
     rows = re.findall(r"<tr>(.*?)</tr>", section[section.index("<tbody"):], re.DOTALL)
-    assert len(rows) == cond.indices.size
-    assert _text(rows[0]).count("\u25c6") == 2  # meter_a and meter_b, not tariff
-    assert all("\u25c6" not in _text(row) for row in rows[1:])  # indices below the limit
+    assert len(rows) == cond.indices.size  # one row per design column (intercept + 3)
+    marked = [_text(row).split()[0] for row in rows if "\u25c6" in _text(row)]
+    assert marked == ["meter_a", "meter_b"]  # the involved columns, listed first; not tariff
+    assert all(_text(row).count("\u25c6") == 1 for row in rows[:2])  # only the one index
+    heading = _text(section[section.index("<thead"):section.index("</thead>")])
+    assert f"{cond.indices[-1]:,.1f} \u25b2" in heading  # the breaching index is marked
+    assert f"{cond.indices[-2]:,.1f} \u25b2" not in heading
+
+
+def test_condition_table_width_does_not_grow_with_features() -> None:
+    rng = np.random.default_rng(5)
+    base = rng.normal(size=(300, 1))
+    values = rng.normal(size=(300, 60))
+    values[:, 1] = values[:, 0] + rng.normal(0, 0.01, 300)
+    values[:, 2:4] = base + rng.normal(0, 0.01, (300, 2))
+    frame = pd.DataFrame(values, columns=[f"load_{k:02d}" for k in range(60)])
+    verdict = check(frame, today=TODAY)
+    section = _section(summary_html(verdict), "condition")
+    head = section[section.index("<thead"):section.index("</thead>")]
+    labels = re.findall(r'<th class="gt_col_heading[^"]*"[^>]*>(.*?)</th>', head, re.DOTALL)
+    assert len(labels) <= 1 + summary.MAX_CONDITION_INDICES  # stub + indices, not 61
+    rows = re.findall(r"<tr>(.*?)</tr>", section[section.index("<tbody"):], re.DOTALL)
+    assert len(rows) == summary.MAX_CONDITION_ROWS
+    first = {_text(row).split()[0] for row in rows[:4]}
+    assert first == {"load_00", "load_01", "load_02", "load_03"}  # the involved ones first
+    assert "Showing 20 of 61 design columns" in _text(section)
 
 
 def test_missing_counts_and_caution(docks_page: str) -> None:
     missing = _text(_section(docks_page, "missing"))
     assert re.search(r"wind_kmh\s+2\s", missing)
+    section = _section(docks_page, "missing")
+    rows = re.findall(r"<tr>(.*?)</tr>", section[section.index("<tbody"):], re.DOTALL)
+    assert len(rows) == 1  # only the column that has missing values
+    assert "air_temp_c" not in missing
     caution = _text(_section(docks_page, "caution"))
     assert "credit, insurance, hiring" in caution and "model-risk policy" in caution
 
 
-def test_matrix_shown_for_small_designs_only(docks_page: str,
-                                             monkeypatch: pytest.MonkeyPatch,
-                                             docks_verdict: Verdict) -> None:
+def test_matrix_full_for_small_designs_else_features_named_by_findings(
+        docks_page: str, monkeypatch: pytest.MonkeyPatch, docks_verdict: Verdict) -> None:
     assert 'id="matrix"' in docks_page
+    full = _body_rows(docks_page, "matrix")
+    assert len(full) == len(docks_verdict.features)
     monkeypatch.setattr(summary, "MAX_MATRIX_FEATURES", 3)
     page = summary_html(docks_verdict)
-    assert 'id="matrix"' not in page
-    assert "at most 3 features" in _text(_section(page, "matrix"))
+    rows = _body_rows(page, "matrix")
+    # the first three design columns named by a finding: docks_free, docks_in_use, docks_total
+    assert [row.split()[1] for row in rows] == ["docks_free", "docks_in_use", "docks_total"]
+    assert "more than the 3 drawn in full" in _text(_section(page, "matrix"))
+    clean = check(make_clean_frame(), today=TODAY)
+    assert len(clean.features) > 3 and not clean.findings
+    assert "no finding names two of them" in _text(_section(summary_html(clean), "matrix"))
 
 
 def test_long_tables_are_capped_breaches_first(docks_verdict: Verdict,
@@ -215,7 +340,10 @@ def test_pass_page(tmp_path: Path) -> None:
     page = summary_html(check(make_clean_frame(), today=TODAY))
     assert "PASS" in page[:page.index("<main>")]
     assert "No findings" in _text(_section(page, "findings"))
+    assert 'id="next-step"' not in page
     assert "None: the design has full rank" in _text(_section(page, "dependencies"))
+    assert "No missing values" in _text(_section(page, "missing"))
+    assert "full rank (6 of 6" in _text(page[:page.index("<main>")])
 
 
 def test_check_writes_summary_next_to_verdict(tmp_path: Path, run_cli: Any,
@@ -249,5 +377,9 @@ def test_wide_design_stays_small() -> None:
     verdict = check(frame, today=TODAY)
     page = summary_html(verdict)
     assert len(page.encode()) < 1_500_000
-    assert "Showing 250 of 400 features and groups" in _text(_section(page, "features"))
-    assert 'id="matrix"' not in page
+    breaches = sum(1 for f in verdict.findings if f.rule == "vif")
+    assert breaches >= 20  # the ten planted pairs
+    shown = breaches + summary.MAX_QUIET_FEATURE_ROWS
+    assert f"Showing {shown} of 400 features and groups" in _text(_section(page, "features"))
+    matrix = _body_rows(page, "matrix")  # only the 20 planted features, named by findings
+    assert [row.split()[1] for row in matrix] == [f"sensor_{k:03d}" for k in range(20)]
