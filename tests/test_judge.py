@@ -263,3 +263,28 @@ def test_effective_rows_never_round_to_zero() -> None:
     assert effective_rows_label(3_000, 32_877.0) == "0.091"
     assert effective_rows_label(3_965, 515.0) == "7.7"
     assert effective_rows_label(3_965, 1.06) == "3,741"
+
+
+def test_a_waiver_in_use_that_expires_soon_adds_an_information_finding() -> None:
+    # Issue 14.4: the owner hears of the expiry before the gate starts failing.
+    import datetime as dt_
+
+    from conftest import make_docks_frame
+
+    from gate.api import check
+    from gate.judge.rules import WAIVER_EXPIRY_HORIZON_DAYS
+
+    today = dt_.date(2027, 1, 10)
+    soon = today + dt_.timedelta(days=12)
+    later = today + dt_.timedelta(days=WAIVER_EXPIRY_HORIZON_DAYS + 1)
+    for expires, expected in ((soon, 1), (later, 0)):
+        policy = Policy.model_validate({"name": "w", "waivers": [{
+            "rule": "pairwise_correlation", "features": ["air_temp_c", "felt_temp_c"],
+            "reason": "kept on purpose", "owner": "fleet-team", "expires": expires}]})
+        verdict = check(make_docks_frame(), policy, today=today)
+        notes = [f for f in verdict.findings if f.rule == "waiver" and f.level == "info"
+                 and "expires on" in f.message]
+        assert len(notes) == expected, [f.message for f in verdict.findings]
+        if expected:
+            assert notes[0].value == 12.0 and "in 12 days" in notes[0].message
+            assert not notes[0].counts  # information: it never changes the status

@@ -36,6 +36,7 @@ from gate.artefacts.audit import (
 )
 from gate.errors import GateError, OutputError
 from gate.judge.diff import FindingKey, finding_key
+from gate.judge.rules import WAIVER_EXPIRY_HORIZON_DAYS
 
 HISTORY_VERSION = 1
 LEVELS = ("fail", "warn", "info")
@@ -373,7 +374,7 @@ def parse_day(text: str | None, option: str) -> dt.date | None:
     return moment.date()
 
 
-def build_history(source: str | Path, *, horizon: int = 30, since: str | None = None,
+def build_history(source: str | Path, *, horizon: int = WAIVER_EXPIRY_HORIZON_DAYS, since: str | None = None,
                   until: str | None = None, label: str | None = None,
                   today: dt.date | None = None) -> History:
     """Read the runs of an audit log or a folder of verdicts into grouped history."""

@@ -19,6 +19,9 @@ from gate.numerics.kernels import INTERCEPT
 from gate.policy.models import Policy, Waiver
 
 INTERCEPT_NAME = "(intercept)"
+#: A waiver in use that expires within this many days gets an information finding, so the
+#: owner hears of it before the gate starts failing (`gate history --horizon` defaults to it).
+WAIVER_EXPIRY_HORIZON_DAYS = 30
 
 
 @dataclass(frozen=True)
@@ -247,4 +250,12 @@ def _apply_waivers(raw: list[Finding], policy: Policy, today: dt.date
             states.append(WaiverState(index, waiver, "stale", 0))
         else:
             states.append(WaiverState(index, waiver, "active", covered))
+            left = (waiver.expires - today).days
+            if left <= WAIVER_EXPIRY_HORIZON_DAYS:
+                extra.append(Finding(
+                    "waiver", "info", tuple(waiver.features), float(left), None,
+                    f"{who} expires on {waiver.expires.isoformat()} (in {left} day"
+                    f"{'' if left == 1 else 's'}); it covers {covered} finding"
+                    f"{'' if covered == 1 else 's'} now: renew it with a new date, or fix them "
+                    "before then", subject="waiver"))
     return tuple(findings + extra), tuple(states)
