@@ -360,3 +360,25 @@ def test_parquet_folder_with_different_schemas(run_cli: CliRunner, tmp_path: Pat
     pq.write_table(table.drop_columns(["tyre_wear"]), folder / "b.parquet")
     line = assert_unusable(run_cli(check_argv(folder, out)), str(folder))
     assert "schema" in line
+
+
+def test_a_closed_stdout_pipe_exits_quietly(tmp_path: Path) -> None:
+    # `gate diff --format json | head -1`: the reader goes away after one line. The command
+    # must not print a BrokenPipe traceback nor report an internal error (exit 3).
+    import json
+    import subprocess
+    import sys
+
+    many = [{"rule": "vif", "level": "fail", "features": [f"x{k}"], "value": 10.0,
+             "limit": 5.0, "waived": False, "waiver": None, "message": "m" * 200}
+            for k in range(3000)]
+    old = {"status": "pass", "features": [], "diagnostics": {"vif": {}}, "findings": []}
+    new = {"status": "fail", "features": [], "diagnostics": {"vif": {}}, "findings": many}
+    (tmp_path / "old.json").write_text(json.dumps(old))
+    (tmp_path / "new.json").write_text(json.dumps(new))
+    script = (f"'{sys.executable}' -m gate diff old.json new.json --format json | head -1 "
+              ">/dev/null; echo ${PIPESTATUS[0]}")
+    result = subprocess.run(["bash", "-c", script], cwd=tmp_path, capture_output=True,
+                            text=True, timeout=120, check=False)
+    assert "Traceback" not in result.stderr and "BrokenPipe" not in result.stderr, result.stderr
+    assert result.stdout.strip() in ("1", "141")  # worse (if it finished first) or SIGPIPE's
