@@ -122,12 +122,11 @@ class CentredGram:
             comoment = centred.T @ centred
             squares = np.diag(comoment) + total * mean**2  # uncentred, weighted
         safe = (squares >= _SQUARES_LOW) & (squares <= _SQUARES_HIGH)
-        if not safe.all():
-            zero = squares == 0.0
-            if not (safe | zero).all() or np.any(centred[:, zero]):
-                return cls._from_scaled_centred(centred, mean, weights, total)
+        zero = (squares == 0.0) & (mean == 0.0)  # all zero, or tiny values whose squares vanish
+        if not safe.all() and (not (safe | zero).all() or np.any(centred[:, zero])):
+            return cls._from_scaled_centred(centred, mean, weights, total)
         exponent = magnitude_exponents(np.sqrt(squares / total))
-        unit = np.where(squares == 0.0, 1.0, powers_of_two(-exponent))  # zero columns stay 0
+        unit = np.where(zero, 1.0, powers_of_two(-exponent))  # zero columns stay 0
         rows = n if weights is None else int(np.count_nonzero(weights > 0))
         return cls(rows, total, mean * unit, comoment * np.outer(unit, unit), exponent)
 
