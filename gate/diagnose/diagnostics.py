@@ -239,14 +239,9 @@ def _standardised_factor(
         norms = np.linalg.norm(r, axis=0)
         norms[norms == 0.0] = 1.0
         return r / norms, "gram+tsqr", plan.scale * norms
-    if plan.cholesky is not None:
-        return plan.cholesky, "gram", plan.scale
-    # Coarse tolerance chosen by the policy: the Gram decides, through a pivoted Cholesky-free
-    # route (eigen-decomposition of corr gives a factor that pivoted QR can read).
-    corr = correlation_block(gram.scaled_comoment, plan.columns, plan.scale)
-    eigenvalues, vectors = np.linalg.eigh(corr)
-    root = vectors * np.sqrt(np.clip(eigenvalues, 0.0, None))
-    return np.asarray(np.linalg.qr(root.T, mode="r")), "gram", plan.scale
+    if plan.cholesky is None:
+        raise ValueError("the plan has neither the Gram's factor nor an exact pass")
+    return plan.cholesky, "gram", plan.scale
 
 
 #: Relation of a dependent column: (its position, the columns it is written in, coefficients).

@@ -7,7 +7,8 @@ relative error that grows with the VIFs themselves (``gram_vif_error_bound``). T
 taken only while every ratio is at least ``GRAM_RESOLUTION`` (certified by
 ``gate.numerics.kernels.certified_cholesky``) *and* that error bound is at most
 ``ACCURACY_TARGET``; otherwise an exact TSQR pass over the centred, scaled rows decides rank
-and gives the VIFs.
+and gives the VIFs. A policy tolerance coarser than ``GRAM_RESOLUTION`` is counted on the
+Gram's Cholesky factor (which resolves ratios that large) under the same two conditions.
 """
 
 from __future__ import annotations
@@ -115,23 +116,21 @@ def plan_exact_pass(gram: CentredGram, *, tolerance: float | None = None) -> Exa
     if columns.size == 0:
         return ExactPassPlan(constant, False, True, columns, centre, col_scale, exponent, tol,
                              0.0, np.zeros((0, 0)), np.zeros((0, 0)))
-    if tol >= GRAM_RESOLUTION:
-        # The Gram resolves ratios above GRAM_RESOLUTION; a coarser tolerance is decided here
-        # (eigen-decomposition route in the diagnostics; its VIFs are not bounded).
-        return ExactPassPlan(constant, False, False, columns, centre, col_scale, exponent, tol,
-                             float("inf"))
     corr = correlation_block(gram.scaled_comoment, columns, col_scale)
     rt, rt_inverse = certified_cholesky(corr, GRAM_RESOLUTION)
     if rt is None or rt_inverse is None:
-        return ExactPassPlan(constant, True, rt is not None, columns, centre, col_scale,
-                             exponent, tol, float("inf"))
+        return ExactPassPlan(constant, True, rt is not None and tol < GRAM_RESOLUTION, columns,
+                             centre, col_scale, exponent, tol, float("inf"))
     # max |mean| / sd over the columns: sd = scale / sqrt(W).
     shift = float(np.max(np.abs(centre) * np.sqrt(gram.weight_sum) / col_scale))
     bound = gram_vif_error_bound(rt_inverse, shift)
+    # Every ratio is >= GRAM_RESOLUTION: that settles full rank at a finer tolerance; a coarser
+    # one (policy) is still counted, on the Gram's factor, which resolves ratios that large.
+    certified = tol < GRAM_RESOLUTION
     if bound > ACCURACY_TARGET:
-        return ExactPassPlan(constant, True, True, columns, centre, col_scale, exponent, tol,
-                             bound)
-    return ExactPassPlan(constant, False, True, columns, centre, col_scale, exponent, tol,
+        return ExactPassPlan(constant, True, certified, columns, centre, col_scale, exponent,
+                             tol, bound)
+    return ExactPassPlan(constant, False, certified, columns, centre, col_scale, exponent, tol,
                          bound, rt, rt_inverse)
 
 
