@@ -201,6 +201,34 @@ def test_centred_gram_merges_in_any_order(seed: int, rows: int, features: int,
 
 
 @PROPERTY_SETTINGS
+@given(seed=st.integers(0, 2**32 - 1), rows=st.integers(2, 80), features=st.integers(1, 6),
+       weighted=st.booleans(), powers=st.lists(st.integers(-1000, 1000), min_size=6,
+                                               max_size=6))
+def test_centred_gram_is_exact_under_power_of_two_scaling(seed: int, rows: int, features: int,
+                                                          weighted: bool, powers: list[int]
+                                                          ) -> None:
+    # Scaling column j by 2**k_j is exact in binary, so the accumulated statistics of the
+    # scaled block, read back in units of 2**k_j, equal the unscaled block's (to rounding),
+    # even where squares of the scaled values (2**+-2000) lie far outside float64, and for any
+    # split of the rows into chunks merged in any order.
+    rng = np.random.default_rng(seed)
+    values = rng.normal(size=(rows, features)) * rng.uniform(0.1, 100, features) \
+        + rng.uniform(-1e3, 1e3, features)
+    weights = rng.uniform(0.0, 3.0, rows) if weighted else None
+    k = np.asarray(powers[:features])
+    plain = CentredGram.from_block(values, weights)
+    scaled_rows = values * np.ldexp(1.0, k)
+    merged = _merge_randomly([CentredGram.from_block(
+        scaled_rows[a:b], None if weights is None else weights[a:b])
+        for a, b in _split(rows, rng)], rng)
+    shift = merged.exponent - k
+    assert_close(np.ldexp(merged.scaled_mean, shift), plain.mean)
+    back = np.ldexp(merged.scaled_comoment, shift[:, None] + shift[None, :])
+    scale = np.sqrt(np.outer(np.diag(plain.comoment), np.diag(plain.comoment)))
+    np.testing.assert_array_less(np.abs(back - plain.comoment), RTOL * scale + 1e-300)
+
+
+@PROPERTY_SETTINGS
 @given(seed=st.integers(0, 2**32 - 1), rows=st.integers(1, 80), features=st.integers(1, 6))
 def test_triangular_factor_merge_agrees_with_one_qr(seed: int, rows: int, features: int
                                                     ) -> None:

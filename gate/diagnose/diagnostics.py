@@ -10,9 +10,15 @@ Route (measured in DEVELOPERS.md; see ../shared/design/numerics.md):
    ``GRAM_RESOLUTION`` (certified cheaply by trace(corr^-1) = sum of VIFs, or by the
    eigenvalues when that bound is inconclusive) the design has full rank and every diagnostic
    comes from ``Rt``: one factorisation, p x p work only.
-3. Otherwise the Gram cannot tell an exact dependency from a near one, and an exact pass is
-   requested: the TSQR factor of the centred, scaled rows (``TriangularFactor``), whose
+3. Otherwise the Gram cannot tell an exact dependency from a near one, or its VIFs would miss
+   ``ACCURACY_TARGET`` (``gate.stats.routing.gram_vif_error_bound``), and an exact pass is
+   requested: the TSQR factor of [1, centred scaled rows] (``TriangularFactor``), whose
    singular values are accurate to ``tol`` = max(n, p+1) eps (numpy's matrix_rank convention).
+
+Columns are held in units of a power of two per column (``CentredGram.exponent``), so every
+scale-free number (correlations, VIFs, condition indices, proportions) is computed in those
+units and equals the diagnostics of the rescaled table, whatever the magnitudes; only means,
+column norms and dependency coefficients are converted back to the data's units.
 
 From the factor: VIF_j = squared norm of row j of inv(Rt) (= [corr^-1]_jj); GVIF per group
 (Fox & Monette 1992, JASA 87:178-183) as det(corr_GG) det([corr^-1]_GG); Belsley, Kuh & Welsch
@@ -50,6 +56,10 @@ from gate.stats.routing import ExactPassPlan
 #: Terms of a dependency whose standardised coefficient is below this (relative to the largest)
 #: are rounding noise, not part of the relation.
 DEPENDENCY_TERM_CUTOFF = 1e-8
+#: A relation's constant at most this times sum |coefficient * mean| (the magnitudes it sums),
+#: or a duplicate's coefficient sum at most this, is rounding noise: written as exactly 0, so
+#: the wording of a relation cannot change with the chunking or the engine.
+DEPENDENCY_ZERO_CUTOFF = 1e-12
 
 
 
@@ -112,6 +122,9 @@ class Diagnostics:
     in_dependency: BoolArray
     rank_tolerance: float
     route: Literal["gram", "gram+tsqr"]
+    #: Relative error bound of the Gram route's VIFs for this table (inf when the Gram could
+    #: not certify full rank); the exact pass ran when it exceeded routing.ACCURACY_TARGET.
+    gram_vif_error_bound: float = 0.0
 
     @property
     def features(self) -> int:
@@ -149,40 +162,44 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
                         groups: tuple[tuple[int, ...], ...] = (),
                         scaling: Scaling = "unit_length") -> Diagnostics:
     """All diagnostics from the main-pass statistics (and the exact factor when planned)."""
-    p = gram.mean.shape[0]
-    scales = np.sqrt(np.clip(np.diag(gram.comoment), 0.0, None))
+    p = gram.scaled_mean.shape[0]
+    # Scaled units (2**exponent per column) for everything scale-free; data units for output.
+    scaled_norms, scaled_means = gram.centred_norms(), gram.scaled_mean
+    with np.errstate(over="ignore"):  # a norm beyond 1.8e308 is reported as inf
+        scales = np.asarray(np.ldexp(scaled_norms, gram.exponent))
+    means = gram.mean
     nc = plan.columns
     correlation = np.full((p, p), np.nan)
     if nc.size:
-        correlation[np.ix_(nc, nc)] = correlation_block(gram.comoment, nc, plan.scale)
+        correlation[np.ix_(nc, nc)] = correlation_block(gram.scaled_comoment, nc, plan.scale)
 
     rt, route, factor_scale = _standardised_factor(gram, plan, factor)
-    unit_scales = scales.copy()  # the scale that makes each column of rt unit length
+    unit_scales = scaled_norms.copy()  # the scale that makes each column of rt unit length
     unit_scales[nc] = factor_scale
     # Share of each column's uncentred norm that its spread carries: rounding in the data is
     # relative to |x|, so a column far from zero resolves relations only to eps / share.
-    uncentred = np.sqrt(scales[nc] ** 2 + gram.weight_sum * gram.mean[nc] ** 2)
-    share = np.divide(scales[nc], uncentred, out=np.ones(nc.size), where=uncentred > 0)
-    along_intercept = np.divide(np.sqrt(gram.weight_sum) * gram.mean[nc], uncentred,
+    uncentred = np.sqrt(scaled_norms[nc] ** 2 + gram.weight_sum * scaled_means[nc] ** 2)
+    share = np.divide(scaled_norms[nc], uncentred, out=np.ones(nc.size), where=uncentred > 0)
+    along_intercept = np.divide(np.sqrt(gram.weight_sum) * scaled_means[nc], uncentred,
                                 out=np.zeros(nc.size), where=uncentred > 0)
     kept_local, relations = _rank_and_dependencies(rt, plan, share, along_intercept,
-                                                   full_rank=plan.cholesky is not None)
+                                                   full_rank=plan.full_rank_certified)
 
     dependencies: list[Dependency] = [
-        Dependency({int(j): 1.0}, float(gram.mean[j]), "constant", int(j))
+        Dependency({int(j): 1.0}, float(means[j]), "constant", int(j))
         for j in np.flatnonzero(plan.constant)
     ]
     in_dependency = plan.constant.copy()
     for d_local, basis_local, coef in relations:
-        dep = _dependency_in_units(int(nc[d_local]), nc[basis_local], coef, gram.mean,
-                                   unit_scales)
+        dep = _dependency_in_units(int(nc[d_local]), nc[basis_local], coef, means,
+                                   unit_scales, gram.exponent)
         dependencies.append(dep)
         in_dependency[list(dep.terms)] = True
 
     kept = nc[kept_local]
-    r_kept = rt if plan.cholesky is not None else _refactor_columns(rt, kept_local)
-    # The certification already inverted Rt when the Gram sufficed: one dtrtri per check.
-    r_inverse = plan.cholesky_inverse if plan.cholesky is not None \
+    r_kept = rt if plan.full_rank_certified else _refactor_columns(rt, kept_local)
+    # The certification already inverted Rt when the Gram route serves: one dtrtri per check.
+    r_inverse = plan.cholesky_inverse if route == "gram" and plan.full_rank_certified \
         and plan.cholesky_inverse is not None else triangular_inverse(r_kept)
     vif = np.full(p, np.inf)
     vif[kept] = squared_row_norms(r_inverse)
@@ -196,16 +213,17 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
     group_results = tuple(
         _group_inflation(g, in_dependency, correlation, inverse_correlation) for g in groups
     )
-    condition = _belsley(gram, kept, r_kept, unit_scales, scaling,
+    condition = _belsley(gram.weight_sum, scaled_means, kept, r_kept, unit_scales, scaling,
                          reduced=len(dependencies) > 0)
     rank = 1 + kept.size
     return Diagnostics(
-        rows=gram.rows, weight_sum=gram.weight_sum, means=gram.mean.copy(), scales=scales,
+        rows=gram.rows, weight_sum=gram.weight_sum, means=means, scales=scales,
         correlation=correlation, inverse_correlation=inverse_correlation, vif=vif,
         groups=group_results, condition=condition,
         condition_number=None if dependencies else float(condition.indices[-1]),
         rank=rank, dependencies=tuple(dependencies), in_dependency=in_dependency,
         rank_tolerance=plan.tolerance, route=route,
+        gram_vif_error_bound=plan.gram_vif_error_bound,
     )
 
 
@@ -215,23 +233,19 @@ def _standardised_factor(
     gram: CentredGram, plan: ExactPassPlan, factor: TriangularFactor | None
 ) -> tuple[FloatArray, Literal["gram", "gram+tsqr"], FloatArray]:
     """Rt with unit columns, Rt'Rt = correlation of the non-constant columns, and the scales
-    s_j for which column j of Rt is the factor of (x_j - m_j) / s_j."""
-    if plan.cholesky is not None:
-        return plan.cholesky, "gram", plan.scale
+    s_j (units 2**exponent) for which column j of Rt is the factor of (x_j - m_j) / s_j."""
     if plan.needs_exact_pass:
         if factor is None:
-            raise ValueError("the Gram cannot settle the rank here: run the exact pass "
-                             "(TriangularFactor over exact_pass_block rows) and pass factor=")
-        r = factor.square()
+            raise ValueError("the Gram cannot settle the rank or the VIFs here: run the exact "
+                             "pass (TriangularFactor over exact_pass_block rows), pass factor=")
+        # Rows [1, z]: the trailing block is the factor of z centred at its exact mean.
+        r = factor.square()[1:, 1:]
         norms = np.linalg.norm(r, axis=0)
         norms[norms == 0.0] = 1.0
         return r / norms, "gram+tsqr", plan.scale * norms
-    # Coarse tolerance chosen by the policy: the Gram decides, through a pivoted Cholesky-free
-    # route (eigen-decomposition of corr gives a factor that pivoted QR can read).
-    corr = correlation_block(gram.comoment, plan.columns, plan.scale)
-    eigenvalues, vectors = np.linalg.eigh(corr)
-    root = vectors * np.sqrt(np.clip(eigenvalues, 0.0, None))
-    return np.asarray(np.linalg.qr(root.T, mode="r")), "gram", plan.scale
+    if plan.cholesky is None:
+        raise ValueError("the plan has neither the Gram's factor nor an exact pass")
+    return plan.cholesky, "gram", plan.scale
 
 
 #: Relation of a dependent column: (its position, the columns it is written in, coefficients).
@@ -383,22 +397,33 @@ def _reorder(coef: FloatArray, lead_pivot: IntArray) -> FloatArray:
 
 
 def _dependency_in_units(dependent: int, kept: IntArray, coef: FloatArray,
-                         mean: FloatArray, scale: FloatArray) -> Dependency:
-    """z_d = sum c_k z_k (standardised) -> x_d - sum a_k x_k = m_d - sum a_k m_k."""
+                         mean: FloatArray, scale: FloatArray, exponent: IntArray) -> Dependency:
+    """z_d = sum c_k z_k (standardised) -> x_d - sum a_k x_k = m_d - sum a_k m_k, scaled so
+    the largest |coefficient| is 1.
+
+    ``scale`` is in units of 2**exponent per column, so a_k = c_k (s_d / s_k) 2**(e_d - e_k)
+    may lie beyond the float range (a column 1e300 times another); the terms are normalised
+    on (fraction, exponent) pairs before they are formed."""
     big = max(1.0, float(np.max(np.abs(coef)))) if coef.size else 1.0
     involved = np.abs(coef) > DEPENDENCY_TERM_CUTOFF * big
-    slopes = coef[involved] * scale[dependent] / scale[kept[involved]]
     cols = kept[involved]
-    constant = float(mean[dependent] - slopes @ mean[cols])
-    terms = {dependent: 1.0, **{int(c): -float(a) for c, a in zip(cols, slopes)}}
-    norm = max(abs(v) for v in terms.values())
-    terms = {k: v / norm for k, v in terms.items()}
-    constant /= norm
-    values = list(terms.values())
-    tiny = 1e-12 * max(1.0, float(np.max(np.abs(mean[list(terms)]))))
+    # Terms of x_d and of each x_k, as fraction * 2**power.
+    fraction, power = np.frexp(np.concatenate(
+        [[1.0], -coef[involved] * scale[dependent] / scale[cols]]))
+    power = power + np.concatenate([[0], exponent[dependent] - exponent[cols]])
+    values = np.ldexp(fraction, power - int(power.max()))  # largest |value| in [0.5, 1)
+    values = values / float(np.max(np.abs(values)))
+    terms = {int(c): float(v) for c, v in zip([dependent, *cols], values)}
+    constant = float(sum(v * mean[k] for k, v in terms.items()))
+    values_list = list(terms.values())
+    # Noise in the constant is relative to the magnitudes it is the sum of.
+    tiny = DEPENDENCY_ZERO_CUTOFF * float(sum(abs(v * mean[k]) for k, v in terms.items()))
+    if abs(constant) <= tiny:
+        constant = 0.0
     kind: Literal["constant", "duplicate", "linear"] = (
-        "duplicate" if len(values) == 2 and abs(values[0] + values[1]) <= 1e-12
-        and abs(constant) <= tiny else "linear"
+        "duplicate" if len(values_list) == 2
+        and abs(values_list[0] + values_list[1]) <= DEPENDENCY_ZERO_CUTOFF
+        and constant == 0.0 else "linear"
     )
     return Dependency(terms, constant, kind, dependent)
 
@@ -411,14 +436,16 @@ def _refactor_columns(rt: FloatArray, columns: IntArray) -> FloatArray:
     return r * signs[:, None]
 
 
-def _belsley(gram: CentredGram, kept: IntArray, r_kept: FloatArray, scales: FloatArray,
-             scaling: Scaling, *, reduced: bool) -> ConditionDiagnostics:
+def _belsley(weight_sum: float, means: FloatArray, kept: IntArray, r_kept: FloatArray,
+             scales: FloatArray, scaling: Scaling, *, reduced: bool) -> ConditionDiagnostics:
     """Condition indices and variance-decomposition proportions (Belsley, Kuh & Welsch 1980).
 
     unit_length: the factor of [1, X] is [[sqrt(W), sqrt(W) m'], [0, R11]] with R11 the factor of
     the centred X, so the intercept's ill-conditioning is represented without squaring anything.
+    ``means`` and ``scales`` in any units per column (the same for both): columns are scaled
+    to unit length.
     """
-    r, columns = scaled_design_factor(gram.weight_sum, gram.mean, kept, r_kept, scales, scaling)
+    r, columns = scaled_design_factor(weight_sum, means, kept, r_kept, scales, scaling)
     indices, proportions = belsley_kuh_welsch(r)
     return ConditionDiagnostics(scaling, indices, proportions, columns, reduced)
 

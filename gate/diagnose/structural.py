@@ -36,6 +36,9 @@ from gate.read.sources import TableSource
 SAMPLE_ROWS = 2048
 #: Rows used to screen every candidate term before the full sample confirms it.
 SCREEN_ROWS = 256
+#: Squares and products of sample columns are formed in the data's units; columns of larger
+#: (or smaller nonzero) magnitude skip this information-only search rather than overflow.
+STRUCTURAL_MAGNITUDE = 2.0**120
 #: |corr(x_j, term)| at or above this on the sample: x_j is (close to) an affine function of the
 #: term. Common practice, no source: 0.999 leaves 0.2% of x_j's variance unexplained.
 STRUCTURAL_CORRELATION = 0.999
@@ -99,7 +102,7 @@ def structural_terms(source: TableSource, plan: DesignPlan, design: Design,
     strength = np.nanmax(np.abs(diagnostics.correlation[np.ix_(rows, numeric)]), axis=0)
     parents = numeric[np.argsort(-strength, kind="stable")[:MAX_PARENTS]]
     sample = read_sample(source, plan, design)
-    if sample.shape[0] < 8:
+    if sample.shape[0] < 8 or not _moderate(sample[:, sorted({*targets, *parents.tolist()})]):
         return ()
     found = detect_terms(sample, targets, np.sort(parents))
     return tuple(_with_vifs(term, diagnostics) for term in found)
@@ -120,6 +123,15 @@ def read_sample(source: TableSource, plan: DesignPlan, design: Design,
     if not blocks:
         return np.zeros((0, len(selection)))
     return np.vstack(blocks)[:rows]
+
+
+def _moderate(block: FloatArray) -> bool:
+    """Every column's largest |value| within STRUCTURAL_MAGNITUDE^+-1 (or zero): squares and
+    products are formed in the data's units, which beyond that could over- or underflow."""
+    largest = np.max(np.abs(block), axis=0) if block.size else np.zeros(0)
+    nonzero = largest[largest > 0.0]
+    return bool(np.all(nonzero <= STRUCTURAL_MAGNITUDE)
+                and np.all(nonzero >= 1.0 / STRUCTURAL_MAGNITUDE))
 
 
 def _standardise(block: FloatArray) -> tuple[FloatArray, np.ndarray]:

@@ -141,10 +141,16 @@ def scaled_design_factor(weight_sum: float, means: FloatArray, kept: IntArray,
         return r_kept, tuple(int(k) for k in kept)
     root_w = np.sqrt(weight_sum)
     k = kept.size
+    # Each column is divided by a power of two near max(|m_j|, s_j) before anything is
+    # multiplied or squared (exact; column scaling is what the unit-length step does anyway),
+    # so columns near 1e308 or 1e-308 neither overflow nor underflow.
+    m, s = means[kept], scales[kept]
+    _, exponent = np.frexp(np.maximum(np.abs(m), s))
+    unit = np.ldexp(1.0, -np.clip(exponent, -1020, 1023))
     r = np.zeros((k + 1, k + 1))
-    r[0, 0] = root_w
-    r[0, 1:] = root_w * means[kept]
-    r[1:, 1:] = r_kept * scales[kept]
+    r[0, 0] = 1.0
+    r[0, 1:] = root_w * (m * unit)
+    r[1:, 1:] = r_kept * (s * unit)
     r = r / np.linalg.norm(r, axis=0)
     return r, (INTERCEPT, *(int(c) for c in kept))
 

@@ -52,7 +52,7 @@ def judge_without(verdict: Verdict, dropped: Iterable[str], today: dt.date
     corr = np.nan_to_num(d.correlation[np.ix_(idx, idx)], nan=0.0)
     np.fill_diagonal(corr, 1.0)
     comoment = corr * np.outer(scales, scales)
-    gram = CentredGram(d.rows, d.weight_sum, d.means[idx].copy(), comoment)
+    gram = CentredGram.from_moments(d.rows, d.weight_sum, d.means[idx].copy(), comoment)
     tolerance = verdict.policy.limits.rank_deficiency.tolerance
     exact = plan_exact_pass(gram, tolerance=tolerance)
     if exact.needs_exact_pass:

@@ -299,7 +299,7 @@ def partition_infinite(part: Partition, column: str, columns: Sequence[str], chu
 def partition_factor(part: Partition, plan: DesignPlan, selection: tuple[int, ...],
                      exact: ExactPassPlan, chunk_rows: int) -> TriangularFactor:
     """Exact pass over one partition."""
-    factor = TriangularFactor.empty(exact.columns.size)
+    factor = exact.empty_factor()
     read = 0
     for chunk in part.tables(plan.read_columns, chunk_rows):
         values, weights, chunk_counts = encode_block(plan, chunk,
@@ -495,7 +495,7 @@ class DaskEngine:
         futures = self._map(source, parts, partition_factor, plan, selection, exact,
                             plan.chunk_rows(chunk_rows))
         if not futures:
-            return TriangularFactor.empty(exact.columns.size)
+            return exact.empty_factor()
         return self._settled(self._tree(futures, merge_factors))
 
     # Plumbing ----------------------------------------------------------------------------------

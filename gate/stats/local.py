@@ -122,7 +122,7 @@ def exact_pass(source: TableSource, plan: DesignPlan, selection: tuple[int, ...]
                exact: ExactPassPlan, *, chunk_rows: int | None = None,
                progress: ProgressFactory | None = None) -> TriangularFactor:
     """TSQR factor of the centred, scaled rows over the columns the Gram could not settle."""
-    factor = TriangularFactor.empty(exact.columns.size)
+    factor = exact.empty_factor()
     read = 0
     with _counting(progress, "exact pass", source.row_count) as advance:
         for chunk in source.chunks(plan.read_columns, plan.chunk_rows(chunk_rows)):

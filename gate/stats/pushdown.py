@@ -337,14 +337,15 @@ def pushdown_pass(source: SqlSource, plan: DesignPlan, by: Sequence[str] = ()
     for key in sorted(first, key=_order):
         counts = first[key]
         if counts.weight_sum <= 0.0 or key not in products:
-            gram = CentredGram(0, 0.0, np.zeros(p), np.zeros((p, p))) \
+            gram = CentredGram.from_moments(0, 0.0, np.zeros(p), np.zeros((p, p))) \
                 if counts.weight_sum <= 0.0 else CentredGram.empty(p)
         else:
             linear, square = products[key]
             scaled = linear / counts.weight_sum
             comoment = square - np.outer(linear, scaled)
             comoment = (comoment + comoment.T) / 2.0
-            gram = CentredGram(counts.rows, counts.weight_sum, shift + scaled, comoment)
+            gram = CentredGram.from_moments(counts.rows, counts.weight_sum, shift + scaled,
+                                            comoment)
         segments.append(SegmentStatistics(key, gram, counts.counts))
     whole_gram = CentredGram.empty(p)
     whole_counts = RowCounts()
