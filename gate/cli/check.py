@@ -53,7 +53,7 @@ def add_commands(commands: Any) -> None:
 def _run_check(args: argparse.Namespace) -> int:
     from gate.api import check
     from gate.artefacts.outputs import write_check_outputs
-    from gate.artefacts.terminal import summary_lines
+    from gate.artefacts.terminal import suggest_command, summary_lines
     from gate.stats.progress import terminal_progress
 
     if args.scheduler and args.engine != "dask":
@@ -70,7 +70,8 @@ def _run_check(args: argparse.Namespace) -> int:
 
         sys.stdout.write(verdict_json(verdict))
     elif not getattr(args, "quiet", False):
-        for line in summary_lines(verdict):
+        for line in summary_lines(verdict, suggest_command(args.table, args.policy,
+                                                           args.chunk_rows)):
             print(line)
         print(f"  wrote {', '.join(str(p) for p in written)}")
     return verdict.exit_code
@@ -103,6 +104,8 @@ def _preload_html_writer() -> None:
 def _run_check_files(args: argparse.Namespace) -> int:
     from gate.api import check
     from gate.artefacts.outputs import write_check_outputs
+    from gate.artefacts.terminal import first_cause
+    from gate.judge.findings import counts_text
     from gate.policy.models import load_policy
 
     policy = load_policy(args.policy)  # a bad policy is one error for every file: exit 2 now
@@ -122,12 +125,10 @@ def _run_check_files(args: argparse.Namespace) -> int:
             print(f"gate: error: {exc}", file=sys.stderr)
             worst = max(worst, ExitCode.BAD_INPUT)
             continue
-        fails = sum(1 for f in verdict.findings if f.level == "fail" and not f.waived)
-        print(f"{verdict.status.upper():4}  {name}  ({fails} fail finding"
-              f"{'s' if fails != 1 else ''}; {written[0].parent})")
-        if verdict.status == "fail":
-            for finding in [f for f in verdict.findings if f.level == "fail"
-                            and not f.waived][:3]:
-                print(f"      {finding.message}")
+        print(f"{verdict.status.upper():4}  {name}  ({counts_text(verdict.findings)}; "
+              f"{written[0].parent})")
+        cause = first_cause(verdict)
+        if cause is not None:
+            print(f"      {cause}")
         worst = max(worst, verdict.exit_code)
     return worst

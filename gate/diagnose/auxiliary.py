@@ -1,0 +1,104 @@
+"""Auxiliary regressions: each feature written in its own units as a linear function of the
+other features, the near dependency a VIF measures, computed from the main pass's statistics
+(inverse correlation, means, scales) with no second pass (numerics.md, Round 2).
+
+A feature inside an exact dependency has none (its relation is the dependency itself). For every
+other feature the regressors are the kept columns (one column per exact dependency dropped):
+they span the same space as all the other features, so R^2, the fitted values and the residual
+are those of the regression on all the others.
+
+Text rule (stated once, used by the terminal, the findings and the README): a term is shown when
+its standardised coefficient |b_k| = |beta_k| s_k / s_j is at least ``SHOWN_TERM`` (0.05; common
+practice, no source): below it, moving x_k by one standard deviation moves the fitted feature by
+less than 5% of the feature's own standard deviation. verdict.json keeps every coefficient.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from gate.diagnose.diagnostics import Diagnostics
+from gate.numerics.kernels import auxiliary_regression
+
+#: Smallest |standardised coefficient| a term needs to be shown in text (common practice,
+#: no source).
+SHOWN_TERM = 0.05
+
+
+@dataclass(frozen=True)
+class Auxiliary:
+    """``feature = intercept + sum(slope_k * x_k) + residual`` over the ``regressors``."""
+
+    feature: int
+    regressors: tuple[int, ...]  # design order
+    slopes: tuple[float, ...]  # in the features' own units, one per regressor
+    standardised: tuple[float, ...]  # b_k = slope_k s_k / s_j
+    intercept: float
+    r2: float
+    residual_sd: float  # sqrt(weighted residual sum of squares / (n - regressors - 1))
+
+    def shown_terms(self) -> list[tuple[int, float, float]]:
+        """(column, slope, standardised) with |standardised| >= SHOWN_TERM, largest first."""
+        terms = [(c, s, b) for c, s, b in zip(self.regressors, self.slopes, self.standardised)
+                 if abs(b) >= SHOWN_TERM]
+        return sorted(terms, key=lambda t: -abs(t[2]))
+
+    def omitted(self) -> int:
+        """How many regressors the text leaves out by the SHOWN_TERM rule."""
+        return len(self.regressors) - len(self.shown_terms())
+
+    def equation(self, names: tuple[str, ...]) -> str:
+        """``y ≈ 1.00·a + 0.980·b + 0.310 (R² 0.99999, residual sd 0.004)``."""
+        parts: list[str] = []
+        for column, slope, _ in self.shown_terms():
+            parts.append(f"{'-' if slope < 0 else '+'} {number(abs(slope))}·{names[column]}")
+        scale = max([abs(self.intercept), *(abs(s) for s in self.slopes)], default=0.0)
+        if self.intercept != 0.0 and abs(self.intercept) > 1e-12 * scale:
+            parts.append(f"{'-' if self.intercept < 0 else '+'} {number(abs(self.intercept))}")
+        text = " ".join(parts) or "a constant"
+        text = text[2:] if text.startswith("+ ") else "-" + text[2:] if text[0] == "-" else text
+        omitted = self.omitted()
+        extra = (f"; {omitted} term{'s' if omitted != 1 else ''} with |standardised "
+                 f"coefficient| < {SHOWN_TERM:g} left out") if omitted else ""
+        return (f"{names[self.feature]} ≈ {text} (R² {r2_text(self.r2)}, residual sd "
+                f"{number(self.residual_sd)}{extra})")
+
+
+def number(value: float) -> str:
+    """Three significant digits, trailing zeros kept (1.00, 0.980, 1.23e+04); ∞ for infinity."""
+    if math.isinf(value):
+        return "∞" if value > 0 else "-∞"
+    return f"{value:#.3g}".rstrip(".") if value != 0 else "0"
+
+
+def r2_text(r2: float) -> str:
+    """Enough decimals that an R² close to 1 does not read as 1 (1 - R² = 1 / VIF)."""
+    if r2 >= 1.0:
+        return "1"
+    gap = 1.0 - r2
+    decimals = max(4, min(15, math.floor(-math.log10(gap)) + 2)) if gap > 0 else 15
+    return f"{r2:.{decimals}f}"
+
+
+def auxiliary_for(d: Diagnostics, feature: int) -> Auxiliary | None:
+    """The auxiliary regression of ``feature``; None inside an exact dependency, for a constant,
+    or when no other column is left to regress on."""
+    if d.in_dependency[feature] or not np.isfinite(d.vif[feature]):
+        return None
+    kept = np.flatnonzero(np.isfinite(np.diag(d.inverse_correlation)))
+    if feature not in kept or kept.size < 2:
+        return None
+    position = int(np.searchsorted(kept, feature))
+    block = d.inverse_correlation[np.ix_(kept, kept)]
+    slopes, standardised, intercept, r2, ssr = auxiliary_regression(
+        block, position, d.means[kept], d.scales[kept])
+    others = [k for k in range(kept.size) if k != position]
+    df = d.rows - len(others) - 1
+    residual_sd = math.sqrt(max(ssr, 0.0) / df) if df > 0 else math.nan
+    return Auxiliary(feature, tuple(int(kept[k]) for k in others),
+                     tuple(float(slopes[k]) for k in others),
+                     tuple(float(standardised[k]) for k in others), intercept,
+                     float(r2), residual_sd)
