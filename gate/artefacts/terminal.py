@@ -82,15 +82,14 @@ def finding_lines(verdict: Verdict, suggest: str | None = None) -> list[str]:
     dependencies = [f for f in active if f.subject == "dependency"]
     for dependency in dependencies:
         pending.remove(dependency)
-        lines.append(f"  [{dependency.level}] {dependency.rule}: {dependency.message}")
-        shown += 1
         folded = _consequences(verdict, dependency, pending)
         for f in folded:
             pending.remove(f)
-        if folded:
-            lines.append(f"         so VIF ∞ for {', '.join(f.features[0] for f in folded)} "
-                         f"({len(folded)} {folded[0].level} finding"
-                         f"{'s' if len(folded) != 1 else ''})")
+        so = (f"; so VIF ∞ for {', '.join(f.features[0] for f in folded)} "
+              f"({len(folded)} more {folded[0].level} finding{'s' if len(folded) != 1 else ''})"
+              if folded else "")
+        lines.append(f"  [{dependency.level}] {dependency.rule}: {dependency.message}{so}")
+        shown += 1
     fails = verdict.status == "fail"
     if dependencies and fails:
         lines.append(next_line)
