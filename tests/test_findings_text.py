@@ -146,7 +146,9 @@ def test_verdict_json_auxiliary_for_breaching_features_and_all_with_full_matrice
     assert set(auxiliary) == breaching and "outdoor_c" not in auxiliary
     record = auxiliary["total_kwh"]
     assert set(record) >= {"r2", "intercept", "coefficients", "residual_sd"}
-    assert set(record["coefficients"]) == {"lighting_kwh", "hvac_kwh", "plug_kwh", "outdoor_c"}
+    # the stated rule: terms with |standardised coefficient| >= 0.05 (outdoor_c is unrelated)
+    assert set(record["coefficients"]) == {"lighting_kwh", "hvac_kwh", "plug_kwh"}
+    assert record["terms_left_out"] == 1
     full = tmp_path / "full"
     run_cli(["check", table, "--out", full, "--full-matrices"])
     document = json.loads((full / "verdict.json").read_text(encoding="utf-8"))

@@ -105,7 +105,7 @@ def finding_lines(verdict: Verdict, suggest: str | None = None) -> list[str]:
     if fails and next_line not in lines:
         lines.append(next_line)
     if hidden:
-        lines.append(f"  ... and {len(hidden)} more ({counts_text(hidden)}) in verdict.json")
+        lines.append(f"  ... and {len(hidden)} more in verdict.json ({counts_text(hidden)})")
     return lines
 
 

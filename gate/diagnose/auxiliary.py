@@ -10,7 +10,9 @@ are those of the regression on all the others.
 Text rule (stated once, used by the terminal, the findings and the README): a term is shown when
 its standardised coefficient |b_k| = |beta_k| s_k / s_j is at least ``SHOWN_TERM`` (0.05; common
 practice, no source): below it, moving x_k by one standard deviation moves the fitted feature by
-less than 5% of the feature's own standard deviation. verdict.json keeps every coefficient.
+less than 5% of the feature's own standard deviation. verdict.json lists the same terms (so it
+grows with the breaching features, not with p^2) and how many were left out; the intercept,
+R^2 and residual are those of the full fit.
 """
 
 from __future__ import annotations
@@ -92,9 +94,8 @@ def auxiliary_for(d: Diagnostics, feature: int) -> Auxiliary | None:
     if feature not in kept or kept.size < 2:
         return None
     position = int(np.searchsorted(kept, feature))
-    block = d.inverse_correlation[np.ix_(kept, kept)]
     slopes, standardised, intercept, r2, ssr = auxiliary_regression(
-        block, position, d.means[kept], d.scales[kept])
+        d.inverse_correlation[feature, kept], position, d.means[kept], d.scales[kept])
     others = [k for k in range(kept.size) if k != position]
     df = d.rows - len(others) - 1
     residual_sd = math.sqrt(max(ssr, 0.0) / df) if df > 0 else math.nan

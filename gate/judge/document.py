@@ -74,9 +74,12 @@ class AuxiliaryRecord(_Closed):
 
     r2: float = Field(description="R^2 of the regression = 1 - 1/VIF.")
     intercept: float
-    coefficients: dict[str, float] = Field(description="Slopes in the features' own units, "
-                                           "every regressor (one column per exact dependency "
-                                           "removed).")
+    coefficients: dict[str, float] = Field(description="Slopes in the features' own units "
+                                           "of the regressors whose |standardised coefficient| "
+                                           "is at least 0.05, largest first (the fit uses every "
+                                           "feature, one column per exact dependency removed).")
+    terms_left_out: int = Field(ge=0, description="Regressors below 0.05 not listed (their "
+                                "slopes follow from matrices.npz's inverse correlation).")
     residual_sd: Number = Field(description="sqrt(weighted residual sum of squares / "
                                 "(n - regressors - 1)); null when no degrees of freedom are "
                                 "left.")

@@ -181,8 +181,8 @@ class Verdict:
                 },
                 "auxiliary": {
                     name: {"r2": aux.r2, "intercept": aux.intercept,
-                           "coefficients": {names[c]: v for c, v in zip(aux.regressors,
-                                                                         aux.slopes)},
+                           "coefficients": {names[c]: v for c, v, _ in aux.shown_terms()},
+                           "terms_left_out": aux.omitted(),
                            "residual_sd": finite_or_none(aux.residual_sd),
                            "equation": aux.equation(names)}
                     for name, aux in self.auxiliary().items()

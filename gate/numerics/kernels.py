@@ -163,10 +163,11 @@ def condition_indices(weight_sum: float, means: FloatArray, kept: IntArray, r_ke
     return np.asarray(mu[0] / mu)
 
 
-def auxiliary_regression(inverse_correlation: FloatArray, feature: int, means: FloatArray,
+def auxiliary_regression(inverse_row: FloatArray, feature: int, means: FloatArray,
                          scales: FloatArray) -> tuple[FloatArray, FloatArray, float, float, float]:
     """Least-squares regression of column ``feature`` on the other columns (and an intercept),
-    from the inverse correlation matrix P of those columns: no pass over the rows.
+    from row ``feature`` of the inverse correlation matrix P of those columns: no pass over the
+    rows, O(p) work.
 
     With s the centred (weighted) column norms and m the means (numerics.md, Round 2):
     standardised coefficients b_k = -P_jk / P_jj, slopes beta_k = b_k s_j / s_k,
@@ -174,7 +175,7 @@ def auxiliary_regression(inverse_correlation: FloatArray, feature: int, means: F
     squares s_j^2 / P_jj. Returns (slopes, standardised, intercept, R^2, residual sum of
     squares); the arrays hold every column, with 0 at ``feature``.
     """
-    row = inverse_correlation[feature]
+    row = inverse_row
     pjj = float(row[feature])
     standardised = -row / pjj
     standardised[feature] = 0.0
