@@ -363,3 +363,16 @@ def test_row_number_moment_rule_is_exact() -> None:
     gapped = np.delete(np.arange(3, 104, dtype=float), 50)  # one gap: variance too large
     assert not is_row_number(100, float(gapped.mean()),
                              float(np.linalg.norm(gapped - gapped.mean())))
+
+
+def test_without_policy_stderr_names_the_packaged_policy(write_table: Writer,
+                                                         run_cli: CliRunner,
+                                                         tmp_path: Path) -> None:
+    table = write_table(meters_frame())
+    result = run_cli(["check", table, "--out", tmp_path / "out", "--quiet"])
+    assert "no --policy given: the packaged policy 'default' applies" in result.err
+    assert "every numeric column is a feature" in result.err
+    assert result.out == ""
+    with_policy = run_cli(["check", table, "--out", tmp_path / "out2", "--quiet", "--policy",
+                           str(Path(gate.__file__).parent / "policies" / "default.yaml")])
+    assert "no --policy given" not in with_policy.err

@@ -32,6 +32,17 @@ def suggest_command(table: str, policy: str | None, chunk_rows: int | None = Non
     return shlex.join(words)
 
 
+def default_policy_note(verdict: Verdict) -> str:
+    """What stderr says when no --policy was given: which policy applies and what it takes."""
+    limits = verdict.policy.limits
+    return (f"gate: no --policy given: the packaged policy '{verdict.policy.name}' applies "
+            f"(|r| >= {limits.pairwise_correlation.max:g} {limits.pairwise_correlation.level}, "
+            f"VIF > {limits.vif.max:g} {limits.vif.level}, condition index > "
+            f"{limits.condition_number.max:g} {limits.condition_number.level}, exact "
+            f"dependencies {limits.rank_deficiency.level}); every numeric column is a feature "
+            "and every text column a categorical. Write your own with `gate policy init`")
+
+
 def rank_text(verdict: Verdict) -> str:
     """'rank 13 of 14: 1 exact dependency' (or 'rank 14 of 14')."""
     d = verdict.diagnostics

@@ -53,7 +53,7 @@ def add_commands(commands: Any) -> None:
 def _run_check(args: argparse.Namespace) -> int:
     from gate.api import check
     from gate.artefacts.outputs import write_check_outputs
-    from gate.artefacts.terminal import suggest_command, summary_lines
+    from gate.artefacts.terminal import default_policy_note, suggest_command, summary_lines
     from gate.stats.progress import terminal_progress
 
     if args.scheduler and args.engine != "dask":
@@ -62,6 +62,8 @@ def _run_check(args: argparse.Namespace) -> int:
     verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
                     progress=None if args.quiet else terminal_progress)
+    if args.policy is None:
+        print(default_policy_note(verdict), file=sys.stderr)
     written = write_check_outputs(verdict, Path(args.out), junit=getattr(args, "junit", None),
                                   audit_log=getattr(args, "audit_log", None),
                                   full_matrices=args.full_matrices)
@@ -104,12 +106,13 @@ def _preload_html_writer() -> None:
 def _run_check_files(args: argparse.Namespace) -> int:
     from gate.api import check
     from gate.artefacts.outputs import write_check_outputs
-    from gate.artefacts.terminal import first_cause
+    from gate.artefacts.terminal import default_policy_note, first_cause
     from gate.judge.findings import counts_text
     from gate.policy.models import load_policy
 
     policy = load_policy(args.policy)  # a bad policy is one error for every file: exit 2 now
     worst = 0
+    noted = False  # the default-policy note, once
     used: set[str] = set()
     for name in args.files:
         path = Path(name).resolve()
@@ -131,4 +134,7 @@ def _run_check_files(args: argparse.Namespace) -> int:
         if cause is not None:
             print(f"      {cause}")
         worst = max(worst, verdict.exit_code)
+        if args.policy is None and not noted:
+            noted = True
+            print(default_policy_note(verdict), file=sys.stderr)
     return worst
