@@ -84,9 +84,13 @@ def finding_lines(verdict: Verdict, suggest: str | None = None) -> list[str]:
     """The findings as text, causes first; ``suggest`` is the next-step command (default: built
     from the verdict's table and policy)."""
     active = sorted((f for f in verdict.findings if not f.waived), key=_order)
-    if suggest is None:
+    why = "the fewest features to drop so every fail limit passes"
+    if suggest is None and verdict.table.source.startswith("<"):  # a DataFrame, not a file
+        suggest = suggest_command("TABLE.parquet", verdict.policy.source)
+        why = f"with the table written to a Parquet file: {why}"
+    elif suggest is None:
         suggest = suggest_command(verdict.table.source, verdict.policy.source)
-    next_line = f"  next: {suggest}   (the fewest features to drop so every fail limit passes)"
+    next_line = f"  next: {suggest}   ({why})"
     lines: list[str] = []
     pending = list(active)
     shown = 0

@@ -62,11 +62,11 @@ def _run_check(args: argparse.Namespace) -> int:
     verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
                     progress=None if args.quiet else terminal_progress)
-    if args.policy is None:
-        print(default_policy_note(verdict), file=sys.stderr)
     written = write_check_outputs(verdict, Path(args.out), junit=getattr(args, "junit", None),
                                   audit_log=getattr(args, "audit_log", None),
                                   full_matrices=args.full_matrices)
+    if args.policy is None:  # after the writes: an unusable --out stays a one-line error
+        print(default_policy_note(verdict), file=sys.stderr)
     if getattr(args, "format", "text") == "json":
         from gate.artefacts.verdict_json import verdict_json
 
