@@ -376,3 +376,15 @@ def test_without_policy_stderr_names_the_packaged_policy(write_table: Writer,
     with_policy = run_cli(["check", table, "--out", tmp_path / "out2", "--quiet", "--policy",
                            str(Path(gate.__file__).parent / "policies" / "default.yaml")])
     assert "no --policy given" not in with_policy.err
+
+
+def test_json_on_stdout_matches_the_file_with_full_matrices(write_table: Writer,
+                                                            run_cli: CliRunner,
+                                                            tmp_path: Path) -> None:
+    table = write_table(meters_frame())
+    out = tmp_path / "out"
+    result = run_cli(["check", table, "--out", out, "--full-matrices", "--format", "json"])
+    printed = json.loads(result.out)["diagnostics"]["auxiliary"]
+    written = json.loads((out / "verdict.json").read_text(encoding="utf-8"))
+    assert printed == written["diagnostics"]["auxiliary"]
+    assert set(printed) == set(written["features"])

@@ -62,6 +62,8 @@ def _run_check(args: argparse.Namespace) -> int:
     verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
                     progress=None if args.quiet else terminal_progress)
+    if args.full_matrices:  # stdout's JSON and the file carry the same auxiliary records
+        verdict = verdict.with_full_matrices()
     written = write_check_outputs(verdict, Path(args.out), junit=getattr(args, "junit", None),
                                   audit_log=getattr(args, "audit_log", None),
                                   full_matrices=args.full_matrices)

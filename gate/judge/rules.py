@@ -197,7 +197,7 @@ def _condition_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) 
             f"{count} condition ind{'ex' if count == 1 else 'ices'} over {limit.max:g} "
             f"(largest {number(max(diffuse))}){after} with fewer than two variance proportions "
             f">= {limit.proportion:g}: diffuse ill-conditioning spread over many columns, not "
-            "one relation to remove; the VIF findings name the features it affects",
+            "one relation to remove (the VIFs show which features it inflates)",
             subject="condition_index"))
     return out
 
