@@ -369,13 +369,15 @@ def test_without_policy_stderr_names_the_packaged_policy(write_table: Writer,
                                                          run_cli: CliRunner,
                                                          tmp_path: Path) -> None:
     table = write_table(meters_frame())
-    result = run_cli(["check", table, "--out", tmp_path / "out", "--quiet"])
+    result = run_cli(["check", table, "--out", tmp_path / "out", "--format", "json"])
     assert "no --policy given: the packaged policy 'default' applies" in result.err
     assert "every numeric column is a feature" in result.err
-    assert result.out == ""
-    with_policy = run_cli(["check", table, "--out", tmp_path / "out2", "--quiet", "--policy",
+    assert json.loads(result.out)["status"] == "fail"  # stdout stays the document alone
+    with_policy = run_cli(["check", table, "--out", tmp_path / "out2", "--policy",
                            str(Path(gate.__file__).parent / "policies" / "default.yaml")])
     assert "no --policy given" not in with_policy.err
+    quiet = run_cli(["check", table, "--out", tmp_path / "out3", "--quiet"])
+    assert (quiet.out, quiet.err) == ("", "")  # --quiet: nothing at all
 
 
 def test_json_on_stdout_matches_the_file_with_full_matrices(write_table: Writer,

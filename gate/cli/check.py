@@ -67,7 +67,7 @@ def _run_check(args: argparse.Namespace) -> int:
     written = write_check_outputs(verdict, Path(args.out), junit=getattr(args, "junit", None),
                                   audit_log=getattr(args, "audit_log", None),
                                   full_matrices=args.full_matrices)
-    if args.policy is None:  # after the writes: an unusable --out stays a one-line error
+    if args.policy is None and not args.quiet:  # after the writes: errors stay one line
         print(default_policy_note(verdict), file=sys.stderr)
     if getattr(args, "format", "text") == "json":
         from gate.artefacts.verdict_json import verdict_json

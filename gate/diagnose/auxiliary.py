@@ -23,41 +23,44 @@ from dataclasses import dataclass
 import numpy as np
 
 from gate.diagnose.diagnostics import Diagnostics
-from gate.numerics.kernels import auxiliary_regression
+from gate.numerics.kernels import FloatArray, IntArray, auxiliary_regression
 
 #: Smallest |standardised coefficient| a term needs to be shown in text (common practice,
 #: no source).
 SHOWN_TERM = 0.05
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Auxiliary:
     """``feature = intercept + sum(slope_k * x_k) + residual`` over the ``regressors``."""
 
     feature: int
-    regressors: tuple[int, ...]  # design order
-    slopes: tuple[float, ...]  # in the features' own units, one per regressor
-    standardised: tuple[float, ...]  # b_k = slope_k s_k / s_j
+    regressors: IntArray  # design columns, design order
+    slopes: FloatArray  # in the features' own units, one per regressor
+    standardised: FloatArray  # b_k = slope_k s_k / s_j
     intercept: float
     r2: float
     residual_sd: float  # sqrt(weighted residual sum of squares / (n - regressors - 1))
 
     def shown_terms(self) -> list[tuple[int, float, float]]:
         """(column, slope, standardised) with |standardised| >= SHOWN_TERM, largest first."""
-        terms = [(c, s, b) for c, s, b in zip(self.regressors, self.slopes, self.standardised)
-                 if abs(b) >= SHOWN_TERM]
-        return sorted(terms, key=lambda t: -abs(t[2]))
+        size = np.abs(self.standardised)
+        picked = np.flatnonzero(size >= SHOWN_TERM)
+        picked = picked[np.argsort(-size[picked], kind="stable")]
+        return [(int(self.regressors[k]), float(self.slopes[k]), float(self.standardised[k]))
+                for k in picked]
 
     def omitted(self) -> int:
         """How many regressors the text leaves out by the SHOWN_TERM rule."""
-        return len(self.regressors) - len(self.shown_terms())
+        return int(np.count_nonzero(np.abs(self.standardised) < SHOWN_TERM))
 
     def equation(self, names: tuple[str, ...]) -> str:
         """``y ≈ 1.00·a + 0.980·b + 0.310 (R² 0.99999, residual sd 0.004)``."""
         parts: list[str] = []
         for column, slope, _ in self.shown_terms():
             parts.append(f"{'-' if slope < 0 else '+'} {number(abs(slope))}·{names[column]}")
-        scale = max([abs(self.intercept), *(abs(s) for s in self.slopes)], default=0.0)
+        scale = max(abs(self.intercept),
+                    float(np.max(np.abs(self.slopes))) if self.slopes.size else 0.0)
         if self.intercept != 0.0 and abs(self.intercept) > 1e-12 * scale:
             parts.append(f"{'-' if self.intercept < 0 else '+'} {number(abs(self.intercept))}")
         text = " ".join(parts) or "a constant"
@@ -96,10 +99,8 @@ def auxiliary_for(d: Diagnostics, feature: int) -> Auxiliary | None:
     position = int(np.searchsorted(kept, feature))
     slopes, standardised, intercept, r2, ssr = auxiliary_regression(
         d.inverse_correlation[feature, kept], position, d.means[kept], d.scales[kept])
-    others = [k for k in range(kept.size) if k != position]
-    df = d.rows - len(others) - 1
+    others = np.delete(np.arange(kept.size), position)
+    df = d.rows - others.size - 1
     residual_sd = math.sqrt(max(ssr, 0.0) / df) if df > 0 else math.nan
-    return Auxiliary(feature, tuple(int(kept[k]) for k in others),
-                     tuple(float(slopes[k]) for k in others),
-                     tuple(float(standardised[k]) for k in others), intercept,
+    return Auxiliary(feature, kept[others], slopes[others], standardised[others], intercept,
                      float(r2), residual_sd)

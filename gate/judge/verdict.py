@@ -119,6 +119,8 @@ class Verdict:
         grouped = {k for g in self.design.groups for k in g.indices}
         d = self.diagnostics
         out: dict[str, Auxiliary] = {}
+        if not self.full_matrices and limit.level == "off":
+            return out
         for k, name in enumerate(self.features):
             wanted = self.full_matrices or (limit.level != "off" and k not in grouped
                                             and vif_breaches(float(d.vif[k]), limit.max))
