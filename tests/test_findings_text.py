@@ -390,3 +390,17 @@ def test_json_on_stdout_matches_the_file_with_full_matrices(write_table: Writer,
     written = json.loads((out / "verdict.json").read_text(encoding="utf-8"))
     assert printed == written["diagnostics"]["auxiliary"]
     assert set(printed) == set(written["features"])
+
+
+def test_offset_index_matches_the_svd_of_the_intercept_and_the_column() -> None:
+    from gate.judge.rules import offset_index
+
+    rng = np.random.default_rng(21)
+    year = rng.integers(2001, 2025, 400).astype(float)
+    frame = pd.DataFrame({"model_year": year, "load_t": rng.normal(10, 2, 400)})
+    verdict = gate.check(frame, policy())
+    # Reference: numpy SVD of [1, x] with unit-length columns (Belsley, Kuh & Welsch scaling).
+    design = np.column_stack([np.ones_like(year), year])
+    design /= np.linalg.norm(design, axis=0)
+    mu = np.linalg.svd(design, compute_uv=False)
+    assert offset_index(verdict.diagnostics, 0) == pytest.approx(mu[0] / mu[-1], rel=1e-9)
