@@ -404,3 +404,21 @@ def test_offset_index_matches_the_svd_of_the_intercept_and_the_column() -> None:
     design /= np.linalg.norm(design, axis=0)
     mu = np.linalg.svd(design, compute_uv=False)
     assert offset_index(verdict.diagnostics, 0) == pytest.approx(mu[0] / mu[-1], rel=1e-9)
+
+
+def test_left_out_terms_are_held_at_their_means() -> None:
+    rng = np.random.default_rng(30)
+    rows = 400
+    frame = meters_frame(rows)
+    frame["logged_at_s"] = 1.7e9 + rng.uniform(0, 86_400, rows)  # unrelated, huge mean
+    verdict = gate.check(frame, policy(limits={"condition_number": {"level": "off"}}))
+    aux = aux_of(verdict, "total_kwh")
+    names = verdict.features
+    shown = aux.shown_terms()
+    assert "logged_at_s" not in {names[c] for c, _, _ in shown}
+    # the shown equation passes through the means, as the least-squares fit does
+    at_means = aux.shown_intercept() + sum(s * frame[names[c]].mean() for c, s, _ in shown)
+    assert at_means == pytest.approx(frame["total_kwh"].mean(), rel=1e-9)
+    record = verdict.to_dict()["diagnostics"]["auxiliary"]["total_kwh"]
+    assert record["intercept"] == pytest.approx(aux.shown_intercept())
+    assert abs(record["intercept"]) < 10  # not the -O(1e3) a dropped epoch term leaves

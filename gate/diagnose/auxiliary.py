@@ -10,9 +10,10 @@ are those of the regression on all the others.
 Text rule (stated once, used by the terminal, the findings and the README): a term is shown when
 its standardised coefficient |b_k| = |beta_k| s_k / s_j is at least ``SHOWN_TERM`` (0.05; common
 practice, no source): below it, moving x_k by one standard deviation moves the fitted feature by
-less than 5% of the feature's own standard deviation. verdict.json lists the same terms (so it
-grows with the breaching features, not with p^2) and how many were left out; the intercept,
-R^2 and residual are those of the full fit.
+less than 5% of the feature's own standard deviation. Left-out terms are held at their means
+(folded into the constant), so the shown equation passes through the means as the fit does.
+verdict.json lists the same terms and constant (so it grows with the breaching features, not
+with p^2) and how many were left out; R^2 and the residual are those of the full fit.
 """
 
 from __future__ import annotations
@@ -38,9 +39,10 @@ class Auxiliary:
     regressors: IntArray  # design columns, design order
     slopes: FloatArray  # in the features' own units, one per regressor
     standardised: FloatArray  # b_k = slope_k s_k / s_j
-    intercept: float
+    intercept: float  # of the full fit
     r2: float
     residual_sd: float  # sqrt(weighted residual sum of squares / (n - regressors - 1))
+    means: FloatArray  # of the regressors, to hold left-out terms at their means
 
     def shown_terms(self) -> list[tuple[int, float, float]]:
         """(column, slope, standardised) with |standardised| >= SHOWN_TERM, largest first."""
@@ -49,6 +51,13 @@ class Auxiliary:
         picked = picked[np.argsort(-size[picked], kind="stable")]
         return [(int(self.regressors[k]), float(self.slopes[k]), float(self.standardised[k]))
                 for k in picked]
+
+    def shown_intercept(self) -> float:
+        """The constant of the shown equation: the full fit's intercept plus each left-out
+        term at its mean, so the shown equation, like the fit, passes through the means (a
+        left-out epoch-seconds term would otherwise leave a huge constant behind)."""
+        hidden = np.abs(self.standardised) < SHOWN_TERM
+        return float(self.intercept + self.slopes[hidden] @ self.means[hidden])
 
     def omitted(self) -> int:
         """How many regressors the text leaves out by the SHOWN_TERM rule."""
@@ -59,10 +68,10 @@ class Auxiliary:
         parts: list[str] = []
         for column, slope, _ in self.shown_terms():
             parts.append(f"{'-' if slope < 0 else '+'} {number(abs(slope))}·{names[column]}")
-        scale = max(abs(self.intercept),
-                    float(np.max(np.abs(self.slopes))) if self.slopes.size else 0.0)
-        if self.intercept != 0.0 and abs(self.intercept) > 1e-12 * scale:
-            parts.append(f"{'-' if self.intercept < 0 else '+'} {number(abs(self.intercept))}")
+        constant = self.shown_intercept()
+        scale = max(abs(constant), float(np.max(np.abs(self.slopes))) if self.slopes.size else 0.0)
+        if constant != 0.0 and abs(constant) > 1e-12 * scale:
+            parts.append(f"{'-' if constant < 0 else '+'} {number(abs(constant))}")
         text = " ".join(parts) or "a constant"
         text = text[2:] if text.startswith("+ ") else "-" + text[2:] if text[0] == "-" else text
         omitted = self.omitted()
@@ -103,4 +112,4 @@ def auxiliary_for(d: Diagnostics, feature: int) -> Auxiliary | None:
     df = d.rows - others.size - 1
     residual_sd = math.sqrt(max(ssr, 0.0) / df) if df > 0 else math.nan
     return Auxiliary(feature, kept[others], slopes[others], standardised[others], intercept,
-                     float(r2), residual_sd)
+                     float(r2), residual_sd, d.means[kept[others]])

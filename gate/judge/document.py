@@ -73,7 +73,8 @@ class AuxiliaryRecord(_Closed):
     other features (weighted when the policy names a weight column)."""
 
     r2: float = Field(description="R^2 of the regression = 1 - 1/VIF.")
-    intercept: float
+    intercept: float = Field(description="Constant of the listed equation: the fit's intercept "
+                             "with each left-out regressor held at its mean.")
     coefficients: dict[str, float] = Field(description="Slopes in the features' own units "
                                            "of the regressors whose |standardised coefficient| "
                                            "is at least 0.05, largest first (the fit uses every "

@@ -182,7 +182,7 @@ class Verdict:
                     for g, res in zip(self.design.groups, d.groups)
                 },
                 "auxiliary": {
-                    name: {"r2": aux.r2, "intercept": aux.intercept,
+                    name: {"r2": aux.r2, "intercept": aux.shown_intercept(),
                            "coefficients": {names[c]: v for c, v, _ in aux.shown_terms()},
                            "terms_left_out": aux.omitted(),
                            "residual_sd": finite_or_none(aux.residual_sd),
