@@ -66,9 +66,17 @@ def check(table: Any, policy: Policy | str | Path | None = None, *, label: str |
 
 
 def _with_structural(verdict: Verdict, source: TableSource, plan: DesignPlan) -> Verdict:
-    """Stage after judging: squares/products among breaching features (information only)."""
+    """Stage after judging: squares/products among breaching features, identifier-like
+    features (information only)."""
     if isinstance(source, DaskFrameSource):
         return verdict  # a sample read would start the cluster's graph again; not worth it
+    from gate.diagnose.identifiers import identifier_like
+
+    found = identifier_like(source, verdict.design, verdict.diagnostics)
+    verdict = replace(verdict, findings=verdict.findings + tuple(
+        Finding("identifier", "info", (verdict.features[i.feature],), None, None,
+                i.describe(verdict.features, verdict.diagnostics.rows), subject="feature",
+                value_kind="undefined") for i in found))
     from gate.diagnose.structural import structural_terms
 
     terms = structural_terms(source, plan, verdict.design, verdict.diagnostics, verdict.policy)

@@ -134,6 +134,24 @@ def test_condition_findings_list_involved_features() -> None:
     assert findings[0].level == "warn"
 
 
+def test_near_dependency_identity_is_stable_and_its_waiver_covers_it() -> None:
+    rng = np.random.default_rng(9)
+    rows = 300
+    a = rng.normal(0, 1, rows)
+    frame = pd.DataFrame({"meter_a": a, "occupants": rng.normal(3, 1, rows),
+                          "meter_b": a + rng.normal(0, 0.01, rows)})
+    policy = {"limits": {"condition_number": {"scaling": "standardized"}}}
+    first = of_rule(run(frame, **policy), "condition_number")
+    shuffled = of_rule(run(frame.sample(frac=1.0, random_state=4), **policy),
+                       "condition_number")
+    assert [f.identity for f in first] == [f.identity for f in shuffled]
+    assert [f.features for f in first] == [("meter_a", "meter_b")]  # design order
+    later = TODAY + dt.timedelta(days=30)
+    waived = run(frame, waivers=[waiver("condition_number", ["meter_a", "meter_b"], later)],
+                 **policy)
+    assert all(f.waived for f in of_rule(waived, "condition_number"))
+
+
 # --- waivers --------------------------------------------------------------------------------
 
 def test_active_waiver_covers_its_findings_and_status_follows() -> None:

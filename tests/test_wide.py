@@ -109,7 +109,11 @@ def test_verdict_json_grows_with_breaches_not_with_p_squared(
     clean = gate.check(write(tmp_path / "clean.parquet", wide_values(2_000, 1_000, pairs=0)),
                        WIDE_POLICY)
     assert clean.status == "pass"
-    sizes = {0: len(verdict_json(clean)), 30: (out / "verdict.json").stat().st_size}
+    # Like with like: both without --full-matrices (which adds every feature's auxiliary
+    # regression, O(p) records); the written file has them for every feature.
+    sizes = {0: len(verdict_json(clean)), 30: len(verdict_json(wide_check[1]))}
+    written = json.loads((out / "verdict.json").read_text())
+    assert set(written["diagnostics"]["auxiliary"]) == set(written["features"])
     p = 1_000
     # Per-feature entries (names, VIF, condition indices) are O(p); one p x p matrix of
     # numbers would be over 10 MB here.

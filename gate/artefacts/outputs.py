@@ -110,6 +110,8 @@ def write_check_outputs(verdict: Verdict, out_dir: Path, *, html: bool = True,
     The audit entry hashes the exact verdict.json bytes written here. great-tables and pandas
     are imported only inside the HTML writer.
     """
+    if full_matrices:
+        verdict = verdict.with_full_matrices()  # every feature's auxiliary regression
     plan = plan_outputs(out_dir, html=html, junit=junit, audit_log=audit_log,
                         full_matrices=full_matrices, inputs=inputs)
     data = verdict_json(verdict).encode("utf-8")

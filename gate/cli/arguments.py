@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import sys
 
 
 def add_table_arguments(command: argparse.ArgumentParser) -> None:
@@ -19,14 +18,3 @@ def add_table_arguments(command: argparse.ArgumentParser) -> None:
                          help="a CSV table's field delimiter: one character, or 'tab' "
                          "(default: ',')")
 
-
-def note_default_policy(args: argparse.Namespace) -> None:
-    """Without --policy, say which policy applies and what it makes a feature. Said once the
-    verdict is written, so an unusable input stays a one-line error."""
-    if getattr(args, "policy", None) is None and not getattr(args, "quiet", False):
-        from gate.policy.models import packaged_policy_path
-
-        print(f"gate: note: no --policy given; the packaged default policy applies "
-              f"({packaged_policy_path()}): every numeric column is a feature (text columns "
-              "become dummies), a target or id column too; name them in columns.target and "
-              "columns.exclude of your own policy (`gate policy init`)", file=sys.stderr)

@@ -7,8 +7,8 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from gate.cli.arguments import add_table_arguments, note_default_policy
-from gate.errors import ExitCode, GateError
+from gate.cli.arguments import add_table_arguments
+from gate.errors import ExitCode, GateError, shown
 
 
 def add_commands(commands: Any) -> None:
@@ -62,7 +62,7 @@ def add_commands(commands: Any) -> None:
 def _run_check(args: argparse.Namespace) -> int:
     from gate.api import check
     from gate.artefacts.outputs import plan_outputs, write_check_outputs
-    from gate.artefacts.terminal import summary_lines
+    from gate.artefacts.terminal import default_policy_note, suggest_command, summary_lines
     from gate.stats.progress import terminal_progress
 
     if args.scheduler and args.engine != "dask":
@@ -76,14 +76,18 @@ def _run_check(args: argparse.Namespace) -> int:
                     engine=args.engine, scheduler=args.scheduler,
                     progress=None if args.quiet else terminal_progress,
                     csv_delimiter=args.csv_delimiter)
+    if args.full_matrices:  # stdout's JSON and the file carry the same auxiliary records
+        verdict = verdict.with_full_matrices()
     written = write_check_outputs(verdict, Path(args.out), **outputs)
-    note_default_policy(args)
+    if args.policy is None and not args.quiet:  # after the writes: errors stay one line
+        print(default_policy_note(verdict), file=sys.stderr)
     if getattr(args, "format", "text") == "json":
         from gate.artefacts.verdict_json import verdict_json
 
         sys.stdout.write(verdict_json(verdict))
     elif not getattr(args, "quiet", False):
-        for line in summary_lines(verdict):
+        for line in summary_lines(verdict, suggest_command(args.table, args.policy,
+                                                           args.chunk_rows)):
             print(line)
         print(f"  wrote {', '.join(str(p) for p in written)}")
     return verdict.exit_code
@@ -128,15 +132,18 @@ def _preload_html_writer() -> None:
 def _run_check_files(args: argparse.Namespace) -> int:
     from gate.api import check
     from gate.artefacts.outputs import per_file_folder, plan_outputs, write_check_outputs
+    from gate.artefacts.terminal import default_policy_note, first_cause
+    from gate.judge.findings import counts_text
     from gate.policy.models import load_policy
 
     policy = load_policy(args.policy)  # a bad policy is one error for every file: exit 2 now
     worst = 0
+    noted = False  # the default-policy note, once
     used: set[str] = set()
     for name in args.files:
         path = Path(name).resolve()
-        shown = path.relative_to(Path.cwd()) if path.is_relative_to(Path.cwd()) else path.name
-        folder = per_file_folder(str(shown))  # <file>.gate: never read back as a table
+        relative = path.relative_to(Path.cwd()) if path.is_relative_to(Path.cwd()) else path.name
+        folder = per_file_folder(str(relative))  # <file>.gate: never read back as a table
         while folder in used:
             folder = folder.removesuffix(".gate") + "_.gate"
         used.add(folder)
@@ -146,15 +153,16 @@ def _run_check_files(args: argparse.Namespace) -> int:
             written = write_check_outputs(verdict, Path(args.out) / folder,
                                           inputs=(name, args.policy))
         except GateError as exc:  # this file is unusable; report it and check the others
-            print(f"gate: error: {exc}", file=sys.stderr)
+            print(f"gate: error: {shown(str(exc), None)}", file=sys.stderr)
             worst = max(worst, ExitCode.BAD_INPUT)
             continue
-        fails = sum(1 for f in verdict.findings if f.level == "fail" and not f.waived)
-        print(f"{verdict.status.upper():4}  {name}  ({fails} fail finding"
-              f"{'s' if fails != 1 else ''}; {written[0].parent})")
-        if verdict.status == "fail":
-            for finding in [f for f in verdict.findings if f.level == "fail"
-                            and not f.waived][:3]:
-                print(f"      {finding.message}")
+        print(f"{verdict.status.upper():4}  {name}  ({counts_text(verdict.findings)}; "
+              f"{written[0].parent})")
+        cause = first_cause(verdict)
+        if cause is not None:
+            print(f"      {cause}")
         worst = max(worst, verdict.exit_code)
+        if args.policy is None and not noted:
+            noted = True
+            print(default_policy_note(verdict), file=sys.stderr)
     return worst

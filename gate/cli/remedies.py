@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from gate.cli.arguments import add_table_arguments, note_default_policy
+from gate.cli.arguments import add_table_arguments
 from gate.errors import GateError
 
 
@@ -75,5 +75,8 @@ def _run_suggest(args: argparse.Namespace) -> int:
             print(f"  wrote {written} (columns.exclude += {', '.join(result.drops)})")
     elif args.write_policy and args.format != "json":
         print("  nothing to exclude: --write-policy wrote no file")
-    note_default_policy(args)
+    if args.policy is None:  # after the output: errors stay one line
+        from gate.artefacts.terminal import default_policy_note
+
+        print(default_policy_note(verdict), file=sys.stderr)
     return 0 if result.solved else 1

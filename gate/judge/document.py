@@ -80,7 +80,32 @@ class GroupSummary(_Closed):
 class GroupInflation(_Closed):
     gvif: Number
     df: int = Field(ge=1)
-    gvif_adjusted: Number = Field(description="GVIF^(1/(2 df)).")
+    gvif_adjusted: Number = Field(description="GVIF^(1/(2 df)) (interface v1 name; the same "
+                                  "value as se_inflation).")
+    vif_equivalent: Number = Field(description="GVIF^(1/df): the value judged against "
+                                   "limits.vif.max.")
+    se_inflation: Number = Field(description="GVIF^(1/(2 df)): the factor on the standard "
+                                 "errors, comparable to sqrt(VIF).")
+
+
+class AuxiliaryRecord(_Closed):
+    """feature = intercept + sum(coefficients[k] * k) + residual, fitted by least squares on the
+    other features (weighted when the policy names a weight column)."""
+
+    r2: float = Field(description="R^2 of the regression = 1 - 1/VIF.")
+    intercept: float = Field(description="Constant of the listed equation: the fit's intercept "
+                             "with each left-out regressor held at its mean.")
+    coefficients: dict[str, float] = Field(description="Slopes in the features' own units "
+                                           "of the regressors whose |standardised coefficient| "
+                                           "is at least 0.05, largest first (the fit uses every "
+                                           "feature, one column per exact dependency removed).")
+    terms_left_out: int = Field(ge=0, description="Regressors below 0.05 not listed (their "
+                                "slopes follow from matrices.npz's inverse correlation).")
+    residual_sd: Number = Field(description="sqrt(weighted residual sum of squares / "
+                                "(n - regressors - 1)); null when no degrees of freedom are "
+                                "left.")
+    equation: str = Field(description="The relation as text; terms with |standardised "
+                          "coefficient| < 0.05 are left out.")
 
 
 class VarianceProportions(_Closed):
@@ -120,8 +145,15 @@ class StructuralRecord(_Open):
 class Diagnostics(_Open):
     vif: dict[str, Number] = Field(description="VIF per feature; null = infinite.")
     gvif: dict[str, GroupInflation]
-    condition_number: Number = Field(description="null when the design is rank deficient.")
-    condition_number_reduced: Number
+    auxiliary: dict[str, AuxiliaryRecord] = Field(
+        description="Auxiliary regression of each feature whose VIF breaches the limit (every "
+        "feature with --full-matrices); none for features inside an exact dependency.")
+    condition_number: Number = Field(description="null when the design is rank deficient "
+                                     "(the condition number is infinite).")
+    condition_number_after_removing_dependencies: Number = Field(
+        description="Largest condition index after removing one column per exact dependency: "
+        "the value the condition_number limit judges (equal to condition_number when there is "
+        "no exact dependency).")
     condition_scaling: Literal["unit_length", "standardized"]
     condition_indices: list[Number]
     variance_proportions: list[VarianceProportions]

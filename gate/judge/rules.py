@@ -13,6 +13,7 @@ from dataclasses import dataclass, replace
 from typing import Literal
 
 from gate.design.plan import Design
+from gate.diagnose.auxiliary import auxiliary_for, number
 from gate.diagnose.diagnostics import Dependency, Diagnostics
 from gate.judge.findings import Finding, Level
 from gate.numerics.kernels import INTERCEPT
@@ -79,11 +80,17 @@ def _pair_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) -> li
     i, j, r = d.pairs(limit.max)
     return [
         Finding("pairwise_correlation", _finding_level(limit.level), (names[a], names[b]),
-                float(v), limit.max,
-                f"{names[a]} and {names[b]} move together: r = {v:+.3f} (|r| >= {limit.max:g})",
+                float(v), limit.max, pair_text(names[a], names[b], float(v), limit.max),
                 subject="pair")
         for a, b, v in zip(i.tolist(), j.tolist(), r.tolist())
     ]
+
+
+def pair_text(a: str, b: str, r: float, limit: float) -> str:
+    """The one notation for a pair: 'a and b move together: r = +0.95 (|r| >= 0.8)'; a negative
+    r reads 'move in opposite directions'."""
+    how = "move together" if r >= 0 else "move in opposite directions"
+    return f"{a} and {b} {how}: r = {r:+.3f} (|r| >= {limit:g})"
 
 
 def _vif_findings(d: Diagnostics, design: Design, policy: Policy) -> list[Finding]:
@@ -97,15 +104,15 @@ def _vif_findings(d: Diagnostics, design: Design, policy: Policy) -> list[Findin
             continue  # dummies are judged as a group (GVIF), not one by one
         vif = float(d.vif[k])
         if math.isinf(vif):
-            message = f"{names[k]}: VIF is infinite (it is part of an exact dependency)"
+            message = (f"{names[k]}: VIF ∞ (infinite: {names[k]} is part of an exact "
+                       "dependency)")
             out.append(Finding("vif", _finding_level(limit.level), (names[k],), None, limit.max,
                                message, subject="feature", value_kind="infinite"))
             continue
-        helpers = ", ".join(f"{names[c]} ({b:+.2f})" for c, b in d.explained_by(k))
-        message = (f"{names[k]}: VIF {vif:.3g} > {limit.max:g} (standard error x"
-                   f"{math.sqrt(vif):.2f}, auxiliary R^2 {1 - 1 / vif:.4f})"
-                   + (f"; explained mostly by {helpers}" if helpers else "")
-                   + _effective_rows_text(d.rows, vif))
+        aux = auxiliary_for(d, k)
+        cause = f"{aux.equation(names)}; " if aux is not None else f"{names[k]}: "
+        message = (f"{cause}VIF {number(vif)} > {limit.max:g} (standard error "
+                   f"×{number(math.sqrt(vif))})" + _effective_rows_text(d.rows, vif))
         out.append(Finding("vif", _finding_level(limit.level), (names[k],), vif, limit.max,
                            message, subject="feature"))
     for group, result in zip(design.groups, d.groups):
@@ -118,7 +125,8 @@ def _vif_findings(d: Diagnostics, design: Design, policy: Policy) -> list[Findin
         elif vif_breaches(scaled, limit.max):
             out.append(Finding("vif", _finding_level(limit.level), (group.column,), scaled, limit.max,
                                f"{group.column} ({result.df} dummies): GVIF^(1/df) "
-                               f"{scaled:.3g} > {limit.max:g} (GVIF {result.gvif:.3g})"
+                               f"{number(scaled)} > {limit.max:g} (GVIF {number(result.gvif)}, "
+                               f"standard error ×{number(result.adjusted)})"
                                + _effective_rows_text(d.rows, scaled), subject="group"))
     return out
 
@@ -135,25 +143,83 @@ def _effective_rows_text(rows: int, inflation: float) -> str:
             f"of the {rows:,} rows (n / VIF)")
 
 
+def removed_text(dependencies: int) -> str:
+    """The one phrase for a condition index computed without the exact dependencies (text,
+    HTML, JUnit): one column per dependency is removed, the full design's number is ∞."""
+    return f"after removing {dependencies} exact dependenc{'y' if dependencies == 1 else 'ies'}"
+
+
+def offset_index(d: Diagnostics, column: int) -> float:
+    """Condition index of [1, x] alone with unit-length columns: how far x's offset (a large
+    mean relative to its spread, like a calendar year or epoch seconds) makes it collinear with
+    the intercept. With c = |cos(1, x)| = sqrt(W)|m| / sqrt(W m^2 + s^2) (s the centred norm)
+    the singular values are sqrt(1 +- c), so the index is sqrt((1+c)/(1-c)) =
+    (1 + c) sqrt(W m^2 + s^2) / s."""
+    m, s, w = float(d.means[column]), float(d.scales[column]), d.weight_sum
+    if s <= 0.0:
+        return math.inf
+    total = math.hypot(math.sqrt(w) * m, s)
+    return (1.0 + math.sqrt(w) * abs(m) / total) * total / s
+
+
 def _condition_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) -> list[Finding]:
+    """One finding per near dependency (an index over the limit with two or more proportions
+    >= the policy's proportion; Belsley, Kuh & Welsch 1980), features in design order; every
+    other index over the limit is diffuse, and all of them make ONE information finding."""
     limit = policy.limits.condition_number
     cond = d.condition
     out: list[Finding] = []
-    suffix = " after dropping one column per exact dependency" if cond.reduced else ""
+    removed = len(d.dependencies)
+    after = f" {removed_text(removed)}" if cond.reduced else ""
+    diffuse: list[float] = []
     for k in range(cond.indices.size - 1, -1, -1):
         index = float(cond.indices[k])
         if not index_breaches(index, limit.max):
             break
         shares = [(c, float(cond.proportions[k, pos])) for pos, c in enumerate(cond.columns)]
         chosen = set(involved_columns(shares, limit.proportion))
+        if len(chosen) < 2:
+            diffuse.append(index)
+            continue
         involved = sorted(((c, p) for c, p in shares if c in chosen), key=lambda item: -item[1])
         label = ", ".join(f"{_column_name(c, names)} ({p:.2f})" for c, p in involved)
-        features = tuple(names[c] for c in sorted(chosen) if c != INTERCEPT)  # design order
-        message = (f"condition index {index:.3g} > {limit.max:g}{suffix}; variance proportions "
-                   f">= {limit.proportion:g}: {label or 'none (a diffuse near dependency)'}")
+        columns = sorted(c for c in chosen if c != INTERCEPT)  # design order
+        features = tuple(names[c] for c in columns)
+        with_intercept = INTERCEPT in chosen
+        message = (f"near dependency among {', '.join(features)}"
+                   + (" and the intercept" if with_intercept else "")
+                   + f": condition index {number(index)} > {limit.max:g}{after}; variance "
+                   f"proportions >= {limit.proportion:g}: {label}"
+                   + (_offset_advice(d, columns, names, limit.max) if with_intercept else ""))
         out.append(Finding("condition_number", _finding_level(limit.level), features, index,
                            limit.max, message, subject="condition_index"))
+    if diffuse:
+        count = len(diffuse)
+        out.append(Finding(
+            "condition_number", "info", (), max(diffuse), limit.max,
+            f"{count} condition ind{'ex' if count == 1 else 'ices'} over {limit.max:g} "
+            f"(largest {number(max(diffuse))}){after} with fewer than two variance proportions "
+            f">= {limit.proportion:g}: diffuse ill-conditioning spread over many columns, not "
+            "one relation to remove (the VIFs show which features it inflates)",
+            subject="condition_index"))
     return out
+
+
+def _offset_advice(d: Diagnostics, columns: list[int], names: tuple[str, ...],
+                   limit: float) -> str:
+    """The intercept is involved: name the columns whose offset alone (their index with the
+    intercept, ``offset_index``) exceeds the limit, and what to do about it."""
+    offset = [names[c] for c in columns if offset_index(d, c) > limit]
+    if not offset:
+        return ("; the intercept is involved: the relation includes a constant term, "
+                "so the mean levels of these columns are part of it")
+    listed = ", ".join(offset)
+    them = "it" if len(offset) == 1 else "them"
+    return (f"; the intercept is involved because {listed} "
+            f"{'sits' if len(offset) == 1 else 'sit'} far from zero relative to "
+            f"{'its' if len(offset) == 1 else 'their'} spread (an offset, like a calendar year "
+            f"or epoch seconds): centre {them} (subtract a typical value) or set "
+            "`scaling: standardized` under limits.condition_number")
 
 
 def _rank_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) -> list[Finding]:

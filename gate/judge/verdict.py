@@ -10,6 +10,7 @@ from dataclasses import dataclass, replace
 from typing import Any
 
 from gate.design.plan import Design
+from gate.diagnose.auxiliary import Auxiliary, auxiliary_for
 from gate.diagnose.diagnostics import Diagnostics
 from gate.diagnose.structural import StructuralTerm
 from gate.errors import GateFailed
@@ -22,7 +23,7 @@ from gate.judge.findings import (
     status_of,
     unwaived,
 )
-from gate.judge.rules import INTERCEPT_NAME, WaiverState, describe_dependency
+from gate.judge.rules import INTERCEPT_NAME, WaiverState, describe_dependency, vif_breaches
 from gate.numerics.kernels import INTERCEPT
 from gate.policy.models import Policy
 from gate.stats.routing import GRAM_RESOLUTION
@@ -64,6 +65,9 @@ class Verdict:
     tool_version: str
     structural: tuple[StructuralTerm, ...] = ()  # squares/products among breaching features
     segments: tuple[SegmentVerdict, ...] = ()  # per-segment verdicts (policy `segments`)
+    #: `--full-matrices` was asked: verdict.json carries every feature's auxiliary regression,
+    #: not only the breaching features' (see ``auxiliary``).
+    full_matrices: bool = False
 
     @property
     def exit_code(self) -> int:
@@ -102,6 +106,28 @@ class Verdict:
                                                                  self.diagnostics.vif)}
         for group, result in zip(self.design.groups, self.diagnostics.groups):
             out[group.column] = _effective(n, result.vif_scale)
+        return out
+
+    def with_full_matrices(self) -> Verdict:
+        """This verdict, reporting every feature's auxiliary regression (``--full-matrices``)."""
+        return replace(self, full_matrices=True)
+
+    def auxiliary(self) -> dict[str, Auxiliary]:
+        """Auxiliary regressions by feature name: for each feature whose VIF breaches the VIF
+        limit (dummies are judged as groups and excluded), or for every feature when
+        ``full_matrices``. Features inside an exact dependency have none (see dependencies)."""
+        limit = self.policy.limits.vif
+        grouped = {k for g in self.design.groups for k in g.indices}
+        d = self.diagnostics
+        out: dict[str, Auxiliary] = {}
+        if not self.full_matrices and limit.level == "off":
+            return out
+        for k, name in enumerate(self.features):
+            wanted = self.full_matrices or (limit.level != "off" and k not in grouped
+                                            and vif_breaches(float(d.vif[k]), limit.max))
+            aux = auxiliary_for(d, k) if wanted else None
+            if aux is not None:
+                out[name] = aux
         return out
 
     def with_segments(self, segments: tuple[SegmentVerdict, ...]) -> Verdict:
@@ -155,11 +181,22 @@ class Verdict:
                 "vif": self.vif(),
                 "gvif": {
                     g.column: {"gvif": finite_or_none(res.gvif), "df": res.df,
-                               "gvif_adjusted": finite_or_none(res.adjusted)}
+                               "gvif_adjusted": finite_or_none(res.adjusted),
+                               "vif_equivalent": finite_or_none(res.vif_scale),
+                               "se_inflation": finite_or_none(res.adjusted)}
                     for g, res in zip(self.design.groups, d.groups)
                 },
+                "auxiliary": {
+                    name: {"r2": aux.r2, "intercept": aux.shown_intercept(),
+                           "coefficients": {names[c]: v for c, v, _ in aux.shown_terms()},
+                           "terms_left_out": aux.omitted(),
+                           "residual_sd": finite_or_none(aux.residual_sd),
+                           "equation": aux.equation(names)}
+                    for name, aux in self.auxiliary().items()
+                },
                 "condition_number": finite_or_none(d.condition_number),
-                "condition_number_reduced": finite_or_none(d.condition_number_reduced),
+                "condition_number_after_removing_dependencies": finite_or_none(
+                    d.condition_number_reduced),
                 "condition_scaling": cond.scaling,
                 "condition_indices": [finite_or_none(v) for v in cond.indices],
                 "variance_proportions": [

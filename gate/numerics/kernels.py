@@ -167,3 +167,26 @@ def condition_indices(weight_sum: float, means: FloatArray, kept: IntArray, r_ke
         return np.ones(0)
     mu = sla.svd(r, compute_uv=False, check_finite=False, lapack_driver="gesdd")
     return np.asarray(mu[0] / mu)
+
+
+def auxiliary_regression(inverse_row: FloatArray, feature: int, means: FloatArray,
+                         scales: FloatArray) -> tuple[FloatArray, FloatArray, float, float, float]:
+    """Least-squares regression of column ``feature`` on the other columns (and an intercept),
+    from row ``feature`` of the inverse correlation matrix P of those columns: no pass over the
+    rows, O(p) work.
+
+    With s the centred (weighted) column norms and m the means (numerics.md, Round 2):
+    standardised coefficients b_k = -P_jk / P_jj, slopes beta_k = b_k s_j / s_k,
+    intercept = m_j - beta' m_{-j}, R^2 = 1 - 1 / P_jj, and the (weighted) residual sum of
+    squares s_j^2 / P_jj. Returns (slopes, standardised, intercept, R^2, residual sum of
+    squares); the arrays hold every column, with 0 at ``feature``.
+    """
+    row = inverse_row
+    pjj = float(row[feature])
+    standardised = -row / pjj
+    standardised[feature] = 0.0
+    slopes = standardised * scales[feature] / np.where(scales > 0, scales, 1.0)
+    slopes[feature] = 0.0
+    intercept = float(means[feature] - slopes @ means)
+    return (np.asarray(slopes), np.asarray(standardised), intercept, 1.0 - 1.0 / pjj,
+            float(scales[feature]) ** 2 / pjj)

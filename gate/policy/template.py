@@ -46,6 +46,10 @@ limits:
   # Condition index > 30: a moderate-to-strong near dependency (Belsley, Kuh & Welsch 1980,
   # unit-length columns with an intercept). proportion: the variance-decomposition share at
   # which a feature counts as involved in a near dependency.
+  # scaling: unit_length keeps the intercept, so a column far from zero relative to its spread
+  # (a calendar year, epoch seconds) gives a high index with the intercept: centre such a
+  # column, or use scaling: standardized (centred, scaled columns, no intercept), which judges
+  # only the relations among the features.
   condition_number: {max: 30, level: warn, scaling: unit_length, proportion: 0.5}
   # Exact linear dependencies (constants, duplicates, sums). tolerance: relative
   # singular-value cut-off; null = max(rows, columns) * machine epsilon.
