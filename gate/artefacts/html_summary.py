@@ -37,6 +37,7 @@ from gate.judge.rules import (
     describe_dependency,
     effective_rows_label,
     index_breaches,
+    removed_text,
 )
 from gate.numerics.kernels import INTERCEPT
 from gate.policy.models import packaged_policy_path
@@ -778,8 +779,8 @@ def _condition_section(verdict: Verdict) -> str:
                    style.text(color=_TEXT[level_kind], weight="bold")],
             locations=loc.column_labels(columns=over_keys))
     scaling = "unit-length columns" if cond.scaling == "unit_length" else "standardised columns"
-    reduced = (" Computed after dropping one column per exact dependency (the full design is "
-               "singular, its condition number infinite)." if cond.reduced else "")
+    reduced = (f" Computed {removed_text(len(d.dependencies))} (one column each; the full "
+               "design's condition number is \u221e)." if cond.reduced else "")
     explain = _note(
         f"Belsley, Kuh & Welsch (1980): {scaling} with an intercept. Each column is one "
         f"condition index; an index over {limit.max:g} is marked in its heading. "

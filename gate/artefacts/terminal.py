@@ -22,13 +22,17 @@ SHOWN_FINDINGS = 8
 RULE_ORDER = ("rank_deficiency", "vif", "condition_number", "pairwise_correlation")
 
 
-def suggest_command(table: str, policy: str | None, chunk_rows: int | None = None) -> str:
-    """`gate suggest` with the same TABLE, --policy and --chunk-rows as the check."""
+def suggest_command(table: str, policy: str | None, chunk_rows: int | None = None,
+                    csv_delimiter: str | None = None) -> str:
+    """`gate suggest` with the same TABLE, --policy, --chunk-rows and --csv-delimiter as the
+    check."""
     words = ["gate", "suggest", table]
     if policy is not None:
         words += ["--policy", policy]
     if chunk_rows is not None:
         words += ["--chunk-rows", str(chunk_rows)]
+    if csv_delimiter is not None:
+        words += ["--csv-delimiter", csv_delimiter]
     return shlex.join(words)
 
 

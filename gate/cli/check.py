@@ -86,8 +86,9 @@ def _run_check(args: argparse.Namespace) -> int:
 
         sys.stdout.write(verdict_json(verdict))
     elif not getattr(args, "quiet", False):
-        for line in summary_lines(verdict, suggest_command(args.table, args.policy,
-                                                           args.chunk_rows)):
+        command = suggest_command(args.table, args.policy, args.chunk_rows,
+                                  args.csv_delimiter)
+        for line in summary_lines(verdict, command):
             print(line)
         print(f"  wrote {', '.join(str(p) for p in written)}")
     return verdict.exit_code

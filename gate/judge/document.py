@@ -163,6 +163,9 @@ class Diagnostics(_Open):
     pairs: list[PairRecord]
     rank_tolerance: float
     gram_resolution: float
+    gram_vif_error_bound: Number = Field(
+        default=None, description="Relative error bound of a VIF from the centred Gram; the "
+        "exact (TSQR) route runs when it exceeds 1e-9 (null: not certified).")
     route: str
     effective_rows: dict[str, Number] | None = Field(
         default=None, description="n / VIF per feature (n / GVIF^(1/df) per group).")

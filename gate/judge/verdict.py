@@ -218,6 +218,7 @@ class Verdict:
                           for a, b, v in zip(i.tolist(), j.tolist(), r.tolist())],
                 "rank_tolerance": d.rank_tolerance,
                 "gram_resolution": GRAM_RESOLUTION,
+                "gram_vif_error_bound": finite_or_none(d.gram_vif_error_bound),
                 "route": d.route,
                 "effective_rows": {k: finite_or_none(v) for k, v in self.effective_rows().items()},
                 "se_inflation": {name: finite_or_none(math.sqrt(v)) if v >= 1 else None
