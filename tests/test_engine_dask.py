@@ -42,8 +42,10 @@ pytestmark = pytest.mark.slow
 
 @pytest.fixture(scope="module")
 def client() -> Iterator[Any]:
+    # A free port for the scheduler's HTTP server: 8787 may be taken by another cluster.
     cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                       dashboard_address=None)
+                                       dashboard_address=":0",
+                                       scheduler_kwargs={"dashboard": False})
     client = distributed.Client(cluster)
     client.wait_for_workers(2)
     yield client

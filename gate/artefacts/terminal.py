@@ -89,7 +89,10 @@ def finding_lines(verdict: Verdict, suggest: str | None = None) -> list[str]:
     from the verdict's table and policy)."""
     active = sorted((f for f in verdict.findings if not f.waived), key=_order)
     why = "the fewest features to drop so every fail limit passes"
-    if suggest is None and verdict.table.source.startswith("<"):  # a DataFrame, not a file
+    if suggest is None and verdict.table.database is not None:  # never echo a database URL
+        suggest = suggest_command("TABLE.parquet", verdict.policy.source)
+        why = f"with the query's rows exported to a Parquet file: {why}"
+    elif suggest is None and verdict.table.source.startswith("<"):  # a DataFrame, not a file
         suggest = suggest_command("TABLE.parquet", verdict.policy.source)
         why = f"with the table written to a Parquet file: {why}"
     elif suggest is None:

@@ -86,8 +86,8 @@ def _run_check(args: argparse.Namespace) -> int:
 
         sys.stdout.write(verdict_json(verdict))
     elif not getattr(args, "quiet", False):
-        command = suggest_command(args.table, args.policy, args.chunk_rows,
-                                  args.csv_delimiter)
+        command = None if verdict.table.database is not None else suggest_command(
+            args.table, args.policy, args.chunk_rows, args.csv_delimiter)
         for line in summary_lines(verdict, command):
             print(line)
         print(f"  wrote {', '.join(str(p) for p in written)}")

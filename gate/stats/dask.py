@@ -91,12 +91,18 @@ T = TypeVar("T")
 # same text the local engine shows.
 
 @dataclass(frozen=True)
-class ParquetRowGroup:
+class FilePart:
+    """Rows ``first_row`` .. ``first_row + rows - 1`` of the table, from the file ``path``."""
+
     path: str
-    row_group: int
     first_row: int
     rows: int
-    name: str = ""
+    name: str
+
+
+@dataclass(frozen=True)
+class ParquetRowGroup(FilePart):
+    row_group: int
 
     def tables(self, columns: Sequence[str], chunk_rows: int) -> Iterator[pa.Table]:
         import pyarrow.parquet as pq
@@ -107,13 +113,9 @@ class ParquetRowGroup:
 
 
 @dataclass(frozen=True)
-class ArrowBatches:
-    path: str
+class ArrowBatches(FilePart):
     start: int
     stop: int
-    first_row: int
-    rows: int
-    name: str = ""
 
     def tables(self, columns: Sequence[str], chunk_rows: int) -> Iterator[pa.Table]:
         with pa.memory_map(self.path) as handle:
@@ -165,8 +167,8 @@ def path_partitions(path: Path, name: str | None = None
             meta = pq.ParquetFile(file).metadata
             for group in range(meta.num_row_groups):
                 rows = meta.row_group(group).num_rows
-                parts.append(ParquetRowGroup(str(file), group, first, rows,
-                                             source.display_path(file)))
+                parts.append(ParquetRowGroup(str(file), first, rows, source.display_path(file),
+                                             group))
                 first += rows
         return parts
     absolute = str(path.absolute())
@@ -182,7 +184,7 @@ def path_partitions(path: Path, name: str | None = None
         for start in range(0, len(sizes), ARROW_BATCHES_PER_PARTITION):
             stop = min(start + ARROW_BATCHES_PER_PARTITION, len(sizes))
             rows = sum(sizes[start:stop])
-            parts.append(ArrowBatches(absolute, start, stop, first, rows, shown))
+            parts.append(ArrowBatches(absolute, first, rows, shown, start, stop))
             first += rows
         return parts
     return [WholeSource(absolute, name=shown)]

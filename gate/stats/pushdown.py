@@ -24,8 +24,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from types import TracebackType
-from typing import Any, Self
+from typing import Any
 
 import numpy as np
 
@@ -47,7 +46,7 @@ from gate.read.sql import (
     quote_literal,
 )
 from gate.stats.accumulators import CentredGram, TriangularFactor
-from gate.stats.local import ProgressFactory, exact_pass
+from gate.stats.local import LocalEngine, ProgressFactory, exact_pass
 from gate.stats.routing import ExactPassPlan
 from gate.stats.segments import (
     MAX_SEGMENTS,
@@ -362,18 +361,11 @@ def segment_pass(source: TableSource, plan: DesignPlan, by: Sequence[str], *,
     return pushdown_pass(source, plan, by)
 
 
-class PushDownEngine:
-    """The engine interface of :mod:`gate.stats.local` with the main pass inside the database."""
+class PushDownEngine(LocalEngine):
+    """The local engine with the levels pass and the main pass inside the database."""
 
     def __init__(self, source: SqlSource) -> None:
         self.source = source
-
-    def __enter__(self) -> Self:
-        return self
-
-    def __exit__(self, kind: type[BaseException] | None, exc: BaseException | None,
-                 tb: TracebackType | None) -> None:
-        return None
 
     def distinct_values(self, source: TableSource, names: list[str]) -> dict[str, set[str]]:
         return distinct_values(self.source, names)
