@@ -186,7 +186,7 @@ class Suggestion:
         searched = len(self.drops) - self.forced
         forced = (f"{_count(self.forced, 'drop')} forced, one column per exact dependency"
                   if self.forced else "")
-        pool = _count(len(self.candidates), "flagged feature")
+        pool = _count(len(self.candidates), "candidate feature")
         if self.method == "none" or not searched:
             how = forced or "nothing to search"
         elif self.method == "exact" and self.exhaustive:
@@ -207,6 +207,9 @@ class Suggestion:
         out = [self.headline(), f"  how: {self.how_found()}"]
         if self.tie_break is not None:
             out.append(f"  why this set: {self.tie_break.text}")
+        if self.hierarchy:
+            out.append("  hierarchy kept: " + "; ".join(
+                f"{term} contains {', '.join(parents)}" for term, parents in self.hierarchy))
         for number, step in enumerate(self.steps, 1):
             groups = dict(self.dummies)
             what = step.feature if step.feature not in groups else (
@@ -928,7 +931,7 @@ def suggest(verdict: Verdict, *, keep: Sequence[str] = (), prefer: Sequence[str]
                 chosen = _order_drops(search, base_f, list(best), priority)
                 lower = len(chosen)
                 tie = _explain_tie(ranked, base_f, priority, whole, bool(prefer),
-                                   search.ties_capped)
+                                   search.ties_capped, bool(search.children))
         if not solutions:  # greedy: by choice, budget spent, or no feasible set (best effort)
             if solutions is None:
                 used = "greedy"
@@ -1014,13 +1017,16 @@ def _tie_key(chosen: frozenset[str], base: frozenset[str], priority: dict[str, P
 
 
 def _explain_tie(ranked: list[frozenset[str]], base: frozenset[str],
-                 priority: dict[str, Priority], whole: _Problem, prefer: bool, capped: bool
-                 ) -> TieBreak:
+                 priority: dict[str, Priority], whole: _Problem, prefer: bool, capped: bool,
+                 hierarchy: bool = False) -> TieBreak:
     """Which rule of the tie-break separated the chosen set from the runner-up, in words."""
     size = len(ranked[0])
     sets = f"{len(ranked)}{' or more' if capped else ''} sets of {_count(size, 'drop')}"
+    if hierarchy:
+        sets += " that keep the hierarchy"
     if len(ranked) == 1:
-        return TieBreak("only", 1, f"it is the only set of {_count(size, 'drop')} that passes")
+        return TieBreak("only", 1, f"it is the only set of {_count(size, 'drop')} that passes"
+                        + (" and keeps the hierarchy" if hierarchy else ""))
     best, runner = (_tie_key(s, base, priority, whole) for s in ranked[:2])
     if prefer and best[0] != runner[0]:
         return TieBreak("preference", len(ranked), (
