@@ -146,3 +146,70 @@ def test_effective_rows_and_standard_error_growth(wind_frame: pd.DataFrame) -> N
     message = next(f.message for f in verdict.findings
                    if f.rule == "vif" and f.features == ("wind_ms",))
     assert f"{rows / verdict.vif()['wind_ms']:,.0f} of the {rows:,} rows" in message
+
+
+def test_linear_relation_at_a_large_offset_is_not_a_square() -> None:
+    # Regression (issue 10, item 8): big_offset = 1e12 + c was reported as "close to the square
+    # of big_offset". Its raw square is linear in c to ~24 digits, and the uncentred linear fit
+    # lost the relation to rounding; centred, the square adds nothing to the linear fit.
+    rng = np.random.default_rng(SEED + 3)
+    rows = 5_000
+    c = rng.normal(0.0, 1_000.0, rows)  # spread wide enough that 1e12 + c is not constant
+    frame = pd.DataFrame({"c": c, "big_offset": 1e12 + c, "z": rng.normal(size=rows)})
+    verdict = check(frame)
+    assert verdict.status == "fail"  # the linear dependency itself is found
+    assert any(f.rule == "rank_deficiency" and "big_offset" in f.message
+               for f in verdict.findings)
+    assert verdict.structural == ()
+    assert not any(f.rule == "structural" for f in verdict.findings)
+
+
+def test_a_square_at_a_large_offset_is_still_found() -> None:
+    # The other side of centring: a true square far from zero (x = 1e4 + u, u ~ U(0, 1)) is
+    # still a square, with the exact closed form of the centred VIF (mpmath-checked above):
+    # VIF = 1 + 15 mu^2 / h^2 for x ~ U(a, b).
+    rng = np.random.default_rng(SEED + 4)
+    rows = 50_000
+    low, high = 10_000.0, 10_001.0
+    x = rng.uniform(low, high, rows)
+    frame = pd.DataFrame({"odometer_km": x, "odometer_km_sq": x**2,
+                          "oil_temp_c": rng.normal(90, 5, rows)})
+    verdict = check(frame)
+    [term] = verdict.structural
+    assert term.kind == "square" and term.computed
+    assert verdict.features[term.feature] == "odometer_km_sq"
+    assert term.vif_centred == pytest.approx(1.0, abs=1e-2)  # population value: exactly 1
+
+
+def _radius_frame(measured: bool) -> pd.DataFrame:
+    """Invented fleet data: brake-disc radius (cm) and the disc's area (cm^2), either computed
+    from the radius in the pipeline or measured separately (scanner error sd 0.05 cm^2)."""
+    rng = np.random.default_rng(SEED + 5)
+    rows = 4_000
+    radius = rng.uniform(LOW, HIGH, rows)
+    area = np.pi * radius**2
+    if measured:
+        area = area + rng.normal(0.0, 0.05, rows)
+    return pd.DataFrame({"disc_radius_cm": radius, "disc_area_cm2": area,
+                         "pad_wear_pct": rng.normal(40, 10, rows)})
+
+
+def test_computed_square_offers_centring() -> None:
+    verdict = check(_radius_frame(measured=False))
+    [term] = verdict.structural
+    assert term.computed and term.vif_centred is not None
+    assert term.max_residual <= 1e-6 * 9 * np.pi  # rounding only
+    assert term.slope == pytest.approx(np.pi, rel=1e-9)
+    message = next(f.message for f in verdict.findings if f.rule == "structural")
+    assert "Centring disc_radius_cm before squaring" in message
+
+
+def test_measured_square_does_not_offer_centring() -> None:
+    verdict = check(_radius_frame(measured=True))
+    [term] = verdict.structural  # still structural collinearity (r >= 0.999) ...
+    assert term.kind == "square" and not term.computed
+    assert term.correlation > 0.999
+    assert term.vif_centred is None  # ... but centring is not a remedy for a measured area
+    assert term.max_residual > 0.05  # the scanner error, far above rounding
+    message = next(f.message for f in verdict.findings if f.rule == "structural")
+    assert "not computed from it" in message and "Centring" not in message

@@ -422,3 +422,216 @@ def test_property_a_printed_set_always_passes_check(seed: int, keep_first: bool)
         assert again.status != "fail", (result.drops, [f.message for f in again.findings])
     else:
         assert keep, "without --keep some set (every feature but one) always passes"
+
+
+# --- wording (issue 11, item 9) ----------------------------------------------------------------
+
+def test_headline_counts_features_and_categorical_columns() -> None:
+    # Invented depot data: a categorical whose dummies a numeric column reproduces, and a pair of
+    # near-duplicate odometer readings.
+    rng = np.random.default_rng(SEED + 10)
+    n = 900
+    depot = rng.choice(["north", "south", "east", "west", "hub"], n)
+    odometer = rng.normal(80, 20, n)
+    frame = pd.DataFrame({"depot": depot,
+                          "depot_code": pd.Series(depot).map(
+                              {"north": 0.0, "south": 1.0, "east": 2.0, "west": 3.0,
+                               "hub": 4.0}).to_numpy() + rng.normal(0, 0.05, n),
+                          "odometer_kkm": odometer,
+                          "odometer_dash_kkm": odometer + rng.normal(0, 0.5, n),
+                          "oil_temp_c": rng.normal(90, 5, n)})
+    policy = VIF_ONLY.model_copy(update={"columns": VIF_ONLY.columns.model_copy(
+        update={"categorical": ["depot"]})})
+    verdict = check(frame, policy)
+    both = suggest(verdict, keep=["depot_code"])
+    assert "depot" in both.drops and len(both.drops) == 2 and both.solved
+    assert both.headline().startswith(
+        "drop 1 feature and 1 categorical column (4 dummies): "), both.headline()
+    only_group = suggest(check(frame.drop(columns="odometer_dash_kkm"), policy),
+                         keep=["depot_code"])
+    assert only_group.headline() == "drop 1 categorical column (4 dummies): depot"
+    features = suggest(check(frame.drop(columns="depot"), VIF_ONLY))
+    assert features.headline() == f"drop 1 feature: {features.drops[0]}"
+    two = suggest(check(many_pairs_frame(pairs=2), VIF_ONLY))
+    assert two.headline().startswith("drop 2 features: ")
+    assert suggest(check(frame, policy), keep=["depot_code"]).to_dict()["categorical"] == {
+        "depot": 4}
+
+
+def test_counts_only_with_verbose_and_exhaustive_only_when_it_was(crafted: pd.DataFrame
+                                                                   ) -> None:
+    verdict = check(crafted, VIF_ONLY)
+    exact = suggest(verdict, method="exact")
+    text = "\n".join(exact.lines())
+    assert "node" not in text and "evaluation" not in text
+    assert "exhaustive search over 5 candidate features: no smaller set passes" in text
+    verbose = "\n".join(exact.lines(verbose=True))
+    assert f"{exact.nodes} node" in verbose and f"{exact.evaluations} evaluation" in verbose
+    greedy = suggest(verdict, method="greedy")  # 2 drops, the proven bound is below 2
+    assert greedy.lower_bound < len(greedy.drops) and not greedy.exhaustive
+    text = "\n".join(greedy.lines())
+    assert "exhaustive" not in text and "not proven smallest" in text
+    assert "other sets of this size were not compared" in text
+
+
+def test_the_tie_break_is_explained_in_words() -> None:
+    verdict = check(near_pair_frame(), VIF_ONLY)
+    by_file = suggest(verdict, prefer=["station_load", "dock_pressure"])
+    assert by_file.tie_break is not None and by_file.tie_break.rule == "preference"
+    assert "the preference file decided" in "\n".join(by_file.lines())
+    by_loss = suggest(verdict)
+    assert by_loss.tie_break is not None and by_loss.tie_break.rule == "explained_variance"
+    line = next(x for x in by_loss.lines() if x.startswith("  why this set:"))
+    assert "2 sets of 1 drop pass" in line and "loses the least explained variance" in line
+
+
+def test_infinity_is_a_symbol_in_text_and_null_in_json(docks_frame: pd.DataFrame) -> None:
+    import json
+
+    policy = parse_policy("policy_version: 1\nname: t\ncolumns:\n  categorical: [weather_kind]\n")
+    result = suggest(check(docks_frame, policy))
+    first = result.steps[0]
+    assert first.reason.startswith("exact dependency")
+    assert first.max_vif_before == float("inf") and first.condition_before is None
+    text = "\n".join(result.lines())
+    assert "max VIF ∞ -> " in text and "condition number ∞ -> " in text
+    assert "e+1" not in text and "inf" not in text.replace("information", "")
+    document = json.loads(json.dumps(result.to_dict(), allow_nan=False))
+    assert document["steps"][0]["max_vif_before"] is None
+
+
+# --- --hierarchy ---------------------------------------------------------------------------
+
+def _temperature_frame() -> pd.DataFrame:
+    """Invented: temperature deviation, its square (named temp_dev_c^2) and a road sensor that
+    nearly duplicates it. The square does not breach (VIF 4.7), so only its name ties it."""
+    rng = np.random.default_rng(SEED + 8)
+    n = 3_000
+    t = rng.uniform(-0.5, 1.5, n)
+    return pd.DataFrame({"temp_dev_c": t, "temp_dev_c^2": t**2,
+                         "road_temp_dev_c": t + rng.normal(0, 0.1, n),
+                         "wind_ms": rng.uniform(0, 10, n)})
+
+
+def test_hierarchy_by_name_keeps_the_main_effect_of_a_kept_square() -> None:
+    frame = _temperature_frame()
+    verdict = check(frame, VIF_ONLY)
+    assert verdict.vif()["temp_dev_c^2"] <= 5.0  # not breaching: the detector never sees it
+    # the unconstrained optimum drops the main effect and keeps its square
+    free = suggest(verdict)
+    assert free.drops == ("temp_dev_c",) and "temp_dev_c^2" in free.kept
+    ordered = suggest(verdict, hierarchy=True)
+    assert ordered.drops == ("road_temp_dev_c",) and ordered.solved
+    assert dict(ordered.hierarchy) == {"temp_dev_c^2": ("temp_dev_c",)}
+    # reference: brute force over every drop set closed under "parent dropped -> term dropped"
+    names = list(frame.columns)
+    corr = np.corrcoef(frame.to_numpy(), rowvar=False)
+    closed = [d for size in range(len(names) + 1)
+              for d in itertools.combinations(range(len(names)), size)
+              if (0 not in d or 1 in d)
+              and feasible(corr, [j for j in range(len(names)) if j not in d])]
+    assert len(ordered.drops) == min(len(d) for d in closed)
+    assert check(frame, _excluding(VIF_ONLY, ordered.drops)).status == "pass"
+
+
+def _shift_frame() -> pd.DataFrame:
+    """Invented fleet data: load_hours is computed as shift_hours * engine_load (a product the
+    structural detector finds; its name matches no pattern)."""
+    rng = np.random.default_rng(SEED + 7)
+    n = 3_000
+    hours = rng.uniform(5, 6, n)
+    load = rng.uniform(1, 3, n)
+    return pd.DataFrame({"shift_hours": hours, "engine_load": load,
+                         "load_hours": hours * load, "ambient_c": rng.normal(15, 8, n)})
+
+
+def test_hierarchy_from_the_structural_detector() -> None:
+    frame = _shift_frame()
+    verdict = check(frame, VIF_ONLY)
+    [term] = verdict.structural
+    assert term.computed and verdict.features[term.feature] == "load_hours"
+    # with load_hours ranked most important, the unconstrained optimum drops a main effect
+    prefer = ["load_hours"]
+    free = suggest(verdict, prefer=prefer)
+    assert free.drops == ("engine_load",) and "load_hours" in free.kept
+    ordered = suggest(verdict, prefer=prefer, hierarchy=True)
+    assert ordered.drops == ("load_hours",) and ordered.solved
+    assert dict(ordered.hierarchy) == {"load_hours": ("shift_hours", "engine_load")}
+    # a kept product keeps its main effects: no set passes then
+    kept = suggest(verdict, keep=["load_hours"], hierarchy=True)
+    assert not kept.solved and not set(kept.drops) & {"shift_hours", "engine_load"}
+    assert any("--hierarchy keeps engine_load, shift_hours" in n for n in kept.notes)
+
+
+def test_centring_is_offered_for_a_computed_product_only() -> None:
+    frame = _shift_frame()
+    result = suggest(check(frame, VIF_ONLY))
+    [option] = result.centring
+    assert option.term == "load_hours" and option.parents == ("shift_hours", "engine_load")
+    # reference: the whole gate on the explicitly centred product
+    centred = (frame.shift_hours - frame.shift_hours.mean()) * (
+        frame.engine_load - frame.engine_load.mean())
+    again = check(frame.assign(load_hours=centred), VIF_ONLY)
+    assert option.vif_centred == pytest.approx(again.vif()["load_hours"], rel=1e-8)
+    assert option.max_vif_centred == pytest.approx(max(again.vif().values()), rel=1e-8)
+    line = next(x for x in result.lines() if "centre" in x)
+    assert "centre shift_hours and engine_load before multiplying" in line
+    # measured: the same product read from a separate meter (error sd 0.01) is not centrable
+    rng = np.random.default_rng(SEED + 9)
+    measured = frame.assign(load_hours=frame.load_hours + rng.normal(0, 0.01, len(frame)))
+    verdict = check(measured, VIF_ONLY)
+    [term] = verdict.structural
+    assert not term.computed
+    assert suggest(verdict).centring == ()
+
+
+# --- --write-policy and --prefer files ---------------------------------------------------------
+
+def test_every_added_policy_line_carries_the_dated_mark() -> None:
+    tag = "gate suggest 2026-05-04"
+    for text in (POLICY_BLOCK, POLICY_NO_EXCLUDE, POLICY_NO_COLUMNS,
+                 "policy_version: 1\nname: flow\ncolumns:\n  exclude: [a]  # kept\n"):
+        out = policy_with_exclusions(text, ["dock_pressure", "hub_load"], "why", tag=tag)
+        added = [line for line in out.splitlines()
+                 if ("dock_pressure" in line or "hub_load" in line) and not line.lstrip()
+                 .startswith("#")]
+        assert added and all(line.endswith(f"# {tag}") for line in added), out
+        assert {"dock_pressure", "hub_load"} <= set(parse_policy(out).columns.exclude)
+        for line in text.splitlines():
+            if "dock" not in line and line.strip() and "exclude" not in line:
+                assert line in out
+
+
+def test_cli_prefer_file_that_is_not_utf8(tmp_path: Path,
+                                          run_cli: Callable[..., object]) -> None:
+    table = tmp_path / "pairs.csv"
+    near_pair_frame().to_csv(table, index=False)
+    prefer = tmp_path / "wichtig.txt"
+    prefer.write_bytes("# Reihenfolge: größte Wichtigkeit zuerst\ndock_pressure\n"
+                       .encode("latin-1"))
+    result = run_cli(["suggest", str(table), "--prefer", str(prefer)])
+    assert result.code == 2  # type: ignore[attr-defined]
+    assert len(result.err_lines) == 1  # type: ignore[attr-defined]
+    assert str(prefer) in result.err and "not UTF-8" in result.err  # type: ignore[attr-defined]
+    assert "iconv" in result.err  # type: ignore[attr-defined]
+
+
+def test_cli_verbose_and_hierarchy_flags(tmp_path: Path, run_cli: Callable[..., object]) -> None:
+    table = tmp_path / "temperature.parquet"
+    _temperature_frame().to_parquet(table)
+    plain = run_cli(["suggest", str(table)])
+    assert "node" not in plain.out  # type: ignore[attr-defined]
+    ordered = run_cli(["suggest", str(table), "--hierarchy", "--verbose", "--policy",
+                       str(_vif_policy_file(tmp_path))])
+    assert ordered.code == 0, ordered.err  # type: ignore[attr-defined]
+    assert "drop 1 feature: road_temp_dev_c" in ordered.out  # type: ignore[attr-defined]
+    assert "hierarchy kept: temp_dev_c^2 contains temp_dev_c" in ordered.out  # type: ignore[attr-defined]
+    assert "node" in ordered.out  # type: ignore[attr-defined]
+
+
+def _vif_policy_file(tmp_path: Path) -> Path:
+    path = tmp_path / "vif.yaml"
+    path.write_text("policy_version: 1\nname: vif-only\nlimits:\n  vif: {max: 5, level: fail}\n"
+                    "  pairwise_correlation: {level: \"off\"}\n"
+                    "  condition_number: {level: \"off\"}\n")
+    return path

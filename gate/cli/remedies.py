@@ -33,6 +33,12 @@ def add_commands(commands: Any) -> None:
                          help="search: auto (exact up to 20 candidates), exact, greedy")
     suggest.add_argument("--format", choices=("text", "json"), default="text",
                          help="stdout: the steps as text (default) or as JSON")
+    suggest.add_argument("--hierarchy", action="store_true",
+                         help="never drop a main effect while keeping a square or product "
+                         "containing it: computed squares/products the gate detects, and "
+                         "features named a*b, a:b, a^2 or a**2 whose factors are features")
+    suggest.add_argument("--verbose", action="store_true",
+                         help="also print the search's node and evaluation counts and time")
     suggest.set_defaults(handler=_run_suggest)
 
 
@@ -47,6 +53,7 @@ def _run_suggest(args: argparse.Namespace) -> int:
         policy_with_exclusions,
         read_preference,
         suggestion_comment,
+        suggestion_tag,
     )
     from gate.remedies.search import suggest
 
@@ -55,17 +62,19 @@ def _run_suggest(args: argparse.Namespace) -> int:
     prefer = read_preference(args.prefer) if args.prefer else None
     verdict = check(args.table, policy, chunk_rows=args.chunk_rows,
                     csv_delimiter=args.csv_delimiter)
-    result = suggest(verdict, keep=keep, prefer=prefer, method=args.method)
+    result = suggest(verdict, keep=keep, prefer=prefer, method=args.method,
+                     hierarchy=args.hierarchy)
     if args.format == "json":
         sys.stdout.write(json.dumps(result.to_dict(), indent=2, allow_nan=False) + "\n")
     else:
         print(f"{verdict.status.upper()}  {verdict.table.source}  policy '{policy.name}'")
-        for line in result.lines():
+        for line in result.lines(verbose=args.verbose):
             print(line)
     if args.write_policy and result.drops:
         source = Path(args.policy) if args.policy else packaged_policy_path()
         text = policy_with_exclusions(source.read_text(encoding="utf-8"), result.drops,
-                                      suggestion_comment(result, policy))
+                                      suggestion_comment(result, policy),
+                                      tag=suggestion_tag())
         try:
             written = write_atomic(args.write_policy, text)
         except OSError as exc:

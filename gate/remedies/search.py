@@ -46,12 +46,35 @@ Tie-break among sets of equal size.
   of the dropped standardised features that the kept features cannot reproduce linearly,
   ``loss(D) = trace(C_DD - C_DK C_KK^-1 C_KD)`` (the trace of the Schur complement; it equals
   sum 1/VIF_j for a single drop j, and 0 for a column that an exact dependency reproduces).
+* Then the names, in order.
+The report says in words which of these rules picked the set (:attr:`Suggestion.tie_break`).
+
+Hierarchy (``hierarchy=True``, ``gate suggest --hierarchy``). A main effect is never dropped while
+a square or product containing it is kept: every drop set is closed under "parent dropped ->
+term dropped". Which terms contain which parents comes from two sources, both used:
+
+* the structural detector (:mod:`gate.diagnose.structural`) for breaching features: a term
+  found to be *computed* from its parents (equal to a + b * parent term to rounding over the
+  sample). A *measured* quantity close to a square (an area measured beside a radius) is not a
+  model term, so it does not tie its parent;
+* names, for terms that do not breach (the detector looks only at breaching features):
+  ``a*b``, ``a:b`` (any number of factors) and ``a^2``, ``a**2`` (any integer power >= 2), where
+  every factor is itself a feature of the design.
+
+The search branches on closed sets (choosing a parent drops its terms with it), so the size it
+minimises is the number of units actually dropped. A ``--keep`` term keeps its parents too.
+
+Centring. Where a breaching feature is a computed square or product (the detector's finding),
+the report offers centring the parents before forming it as an alternative to dropping, with
+the VIFs that would give (exact, from the Gram: :func:`gate.diagnose.structural.centred_vifs`).
+It is never offered for a measured term, which centring would not change.
 """
 
 from __future__ import annotations
 
 import datetime as dt
 import math
+import re
 import time
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
@@ -62,6 +85,7 @@ import scipy.linalg as sla
 
 from gate.design.plan import Design
 from gate.diagnose.diagnostics import Diagnostics
+from gate.diagnose.structural import centred_vifs
 from gate.errors import DesignError
 from gate.judge.rules import (
     active_waivers,
@@ -135,31 +159,81 @@ class Suggestion:
     loss: float
     notes: tuple[str, ...] = ()
     evaluations: int = 0  # candidate sets whose limits were evaluated (p x p or m x m work)
+    dummies: tuple[tuple[str, int], ...] = ()  # dropped categorical columns and their dummies
+    forced: int = 0  # drops made one per exact dependency, before the search
+    tie_break: TieBreak | None = None
+    centring: tuple[CentringOption, ...] = ()
+    hierarchy: tuple[tuple[str, tuple[str, ...]], ...] = ()  # term -> parents, when asked for
 
-    def lines(self) -> list[str]:
-        """Terminal report: one line per step, then the final feature list."""
-        how = {"none": "nothing to search",
-               "exact": f"exact branch and bound over {len(self.candidates)} candidate(s)",
-               "greedy": f"greedy over {len(self.candidates)} candidate(s); optimum is at "
-                         f"least {self.lower_bound}"}[self.method]
-        head = ("no drop needed: every fail-level limit passes" if not self.drops and
-                self.solved else f"drop {len(self.drops)} unit(s)")
-        out = [(f"{head} ({how}; {self.nodes} node(s), {self.evaluations} evaluation(s), "
-               f"{self.seconds:.3f} s)")]
+    def headline(self) -> str:
+        """"drop 2 features", "drop 1 categorical column (4 dummies)", or both."""
+        if not self.drops:
+            return ("no drop needed: every fail-level limit passes" if self.solved
+                    else "no drop set found")
+        groups = dict(self.dummies)
+        features = sum(1 for d in self.drops if d not in groups)
+        parts = []
+        if features:
+            parts.append(_count(features, "feature"))
+        if groups:
+            dummies = sum(groups.values())
+            parts.append(f"{_count(len(groups), 'categorical column')} "
+                         f"({_count(dummies, 'dummy', 'dummies')})")
+        return f"drop {' and '.join(parts)}: {', '.join(self.drops)}"
+
+    def how_found(self) -> str:
+        """How the set was found, and whether it is proven smallest (in words)."""
+        searched = len(self.drops) - self.forced
+        forced = (f"{_count(self.forced, 'drop')} forced, one column per exact dependency"
+                  if self.forced else "")
+        pool = _count(len(self.candidates), "candidate feature")
+        if self.method == "none" or not searched:
+            how = forced or "nothing to search"
+        elif self.method == "exact" and self.exhaustive:
+            how = (f"found by an exhaustive search over {pool}: no smaller set passes")
+        elif self.exhaustive:
+            how = (f"found by a greedy search over {pool}; no smaller set passes (at least "
+                   f"{self.lower_bound} {'drop is' if self.lower_bound == 1 else 'drops are'} "
+                   "needed)")
+        else:
+            how = (f"found by a greedy search over {pool}, not proven smallest: the smallest "
+                   f"set has between {self.lower_bound} and {len(self.drops)} drops")
+        if forced and searched and self.method != "none":
+            how = f"{forced}; the rest {how}"
+        return how
+
+    def lines(self, verbose: bool = False) -> list[str]:
+        """Terminal report: what to drop, how it was found and chosen, one line per step."""
+        out = [self.headline(), f"  how: {self.how_found()}"]
+        if self.tie_break is not None:
+            out.append(f"  why this set: {self.tie_break.text}")
+        if self.hierarchy:
+            out.append("  hierarchy kept: " + "; ".join(
+                f"{term} contains {', '.join(parents)}" for term, parents in self.hierarchy))
         for number, step in enumerate(self.steps, 1):
+            groups = dict(self.dummies)
+            what = step.feature if step.feature not in groups else (
+                f"{step.feature} (categorical, {_count(groups[step.feature], 'dummy', 'dummies')})")
+            left = ("no fail-level breach left" if step.breaches_after == 0 else
+                    f"{_count(step.breaches_after, 'fail-level breach', 'fail-level breaches')}"
+                    " left")
             out.append(
-                f"  {number}. drop {step.feature}: {step.reason}; max VIF "
+                f"  {number}. drop {what}: {step.reason}; max VIF "
                 f"{_fmt(step.max_vif_before)} -> {_fmt(step.max_vif_after)}, condition "
-                f"number {_fmt(step.condition_before)} -> {_fmt(step.condition_after)}; "
-                f"{step.breaches_after} fail-level breach(es) left")
+                f"number {_fmt(step.condition_before)} -> {_fmt(step.condition_after)}; {left}")
         if not self.solved:
             out.append("  not solved: " + "; ".join(self.remaining))
+        for option in self.centring:
+            out.append(f"  {'alternative' if self.drops else 'also'}: {option.text}")
         for note in self.notes:
             out.append(f"  note: {note}")
         out.append(f"  features kept ({len(self.kept)}): {', '.join(self.kept)}")
         if self.drops:
-            out.append(f"  loss of explained variance (trace of the Schur complement): "
-                       f"{self.loss:.4g}")
+            out.append(f"  explained variance lost (trace of the Schur complement, in "
+                       f"standardised units): {self.loss:.4g}")
+        if verbose:
+            out.append(f"  search: {_count(self.nodes, 'node')}, "
+                       f"{_count(self.evaluations, 'evaluation')}, {self.seconds:.3f} s")
         return out
 
     def to_dict(self) -> dict[str, object]:
@@ -169,7 +243,15 @@ class Suggestion:
             "evaluations": self.evaluations,
             "seconds": self.seconds, "exhaustive": self.exhaustive,
             "lower_bound": self.lower_bound, "solved": self.solved,
-            "remaining": list(self.remaining), "loss": self.loss, "notes": list(self.notes),
+            "remaining": list(self.remaining), "loss": _json_number(self.loss),
+            "notes": list(self.notes),
+            "headline": self.headline(), "how": self.how_found(), "forced": self.forced,
+            "categorical": {column: count for column, count in self.dummies},
+            "tie_break": None if self.tie_break is None else {
+                "rule": self.tie_break.rule, "sets_compared": self.tie_break.sets,
+                "text": self.tie_break.text},
+            "centring": [option.to_dict() for option in self.centring],
+            "hierarchy": {term: list(parents) for term, parents in self.hierarchy},
             "steps": [{"feature": s.feature, "reason": s.reason,
                        "vif_before": _json_number(s.vif_before),
                        "max_vif_before": _json_number(s.max_vif_before),
@@ -180,10 +262,55 @@ class Suggestion:
         }
 
 
+@dataclass(frozen=True)
+class TieBreak:
+    """Which rule picked the set among the equal-size sets that pass."""
+
+    rule: Literal["only", "preference", "explained_variance", "name", "greedy",
+                  "dependency"]
+    sets: int  # equal-size sets compared (0 when none were)
+    text: str
+
+
+@dataclass(frozen=True)
+class CentringOption:
+    """Centre the parents before forming a computed square/product, instead of dropping."""
+
+    term: str
+    kind: Literal["square", "product"]
+    parents: tuple[str, ...]
+    vif: float
+    vif_centred: float
+    max_vif_centred: float  # over every kept feature of the centred design
+    vif_limit: float | None
+
+    @property
+    def text(self) -> str:
+        verb = "squaring" if self.kind == "square" else "multiplying"
+        passes = ""
+        if self.vif_limit is not None:
+            passes = (f"; the largest VIF left would be {_fmt(self.max_vif_centred)}, "
+                      + ("within" if self.max_vif_centred <= self.vif_limit else "still over")
+                      + f" the VIF limit {self.vif_limit:g} (other limits not re-checked)")
+        return (f"keep {self.term} and centre {' and '.join(self.parents)} before {verb} "
+                f"(subtract the mean first): VIF of {self.term} {_fmt(self.vif)} -> "
+                f"{_fmt(self.vif_centred)}{passes}")
+
+    def to_dict(self) -> dict[str, object]:
+        return {"term": self.term, "kind": self.kind, "parents": list(self.parents),
+                "vif": _json_number(self.vif), "vif_centred": _json_number(self.vif_centred),
+                "max_vif_centred": _json_number(self.max_vif_centred)}
+
+
+def _count(n: int, singular: str, plural: str | None = None) -> str:
+    return f"{n} {singular if n == 1 else (plural or singular + 's')}"
+
+
 def _fmt(value: float | None) -> str:
-    if value is None:
-        return "n/a (rank deficient)"
-    return "inf" if math.isinf(value) else f"{value:.3g}"
+    """Numbers in text: infinity (and a rank-deficient design's condition number) is "∞"."""
+    if value is None or math.isinf(value):
+        return "∞"
+    return f"{value:.3g}"
 
 
 def _json_number(value: float | None) -> float | None:
@@ -514,6 +641,8 @@ class _Search:
         self.nodes = 0
         self.evaluations = 0
         self.ties_capped = False
+        #: --hierarchy: unit -> the squares/products containing it (dropped with it)
+        self.children: dict[str, frozenset[str]] = {}
         self.cache: dict[frozenset[str], tuple[bool, list[_Breach], dict[str, float],
                                                dict[str, list[str]]]] = {}
 
@@ -543,6 +672,19 @@ class _Search:
             if len(self.cache) < 500_000:
                 self.cache[dropped] = hit
         return _State(*hit)
+
+    def closure(self, dropped: frozenset[str]) -> frozenset[str]:
+        """``dropped`` with every term whose parent it drops (--hierarchy; else unchanged)."""
+        if not self.children:
+            return dropped
+        out = set(dropped)
+        todo = list(dropped)
+        while todo:
+            for term in self.children.get(todo.pop(), ()):
+                if term not in out:
+                    out.add(term)
+                    todo.append(term)
+        return frozenset(out)
 
     def count(self) -> None:
         self.nodes += 1
@@ -612,7 +754,9 @@ class _Search:
         self.count()
         state = self.state(base | chosen)
         if state.feasible:
-            if len(chosen) == size:
+            # == size without --hierarchy; a closed set can skip sizes, and a smaller feasible
+            # one would have been found by an earlier (smaller) iteration
+            if len(chosen) <= size:
                 found.append(chosen)
                 if len(found) >= MAX_TIES:
                     raise _EnoughTies
@@ -627,14 +771,19 @@ class _Search:
         if len(chosen) + max(len(forced), self.disjoint(supports)) > size:
             return
         if forced:
-            self._dfs(base, chosen | forced, excluded, size, candidates, found)
+            grown = self.closure(chosen | forced)
+            if not grown & excluded:  # a closed completion must drop what this branch keeps
+                self._dfs(base, grown, excluded, size, candidates, found)
             return
         narrowest: list[str] = min(supports, key=lambda support: len(support))
         branch = sorted(narrowest, key=lambda u: (
             self.priority[u][0], -state.inflation.get(u, 0.0), self.priority[u][1]))
         for i, unit in enumerate(branch):
-            self._dfs(base, chosen | {unit}, excluded | frozenset(branch[:i]), size,
-                      candidates, found)
+            grown = self.closure(chosen | {unit})
+            kept_here = excluded | frozenset(branch[:i])
+            if grown & kept_here:
+                continue
+            self._dfs(base, grown, kept_here, size, candidates, found)
 
     # greedy
 
@@ -653,13 +802,17 @@ class _Search:
                             key=lambda u: self.priority[u])
             if forced:
                 chosen += forced
-                continue
-            in_breach = {u for b in state.breaches for u in b.units} & set(allowed)
-            pool = sorted(in_breach or set(allowed),
-                          key=lambda u: (-state.inflation.get(u, 0.0), self.priority[u]))
-            chosen.append(pool[0])
+            else:
+                in_breach = {u for b in state.breaches for u in b.units} & set(allowed)
+                pool = sorted(in_breach or set(allowed),
+                              key=lambda u: (-state.inflation.get(u, 0.0), self.priority[u]))
+                chosen.append(pool[0])
+            chosen += sorted(self.closure(frozenset(chosen)) - set(chosen),
+                             key=lambda u: self.priority[u])
         for unit in reversed(list(chosen)):  # put back every drop that is not needed
             trial = [u for u in chosen if u != unit]
+            if self.closure(frozenset(trial)) != frozenset(trial):
+                continue  # a parent of this term is dropped: --hierarchy keeps it dropped
             self.count()
             if self.state(base | frozenset(trial)).feasible:
                 chosen = trial
@@ -677,7 +830,8 @@ class _Search:
 
 def suggest(verdict: Verdict, *, keep: Sequence[str] = (), prefer: Sequence[str] | None = None,
             method: Method = "auto", exact_limit: int = EXACT_LIMIT,
-            max_nodes: int = MAX_NODES, today: dt.date | None = None) -> Suggestion:
+            max_nodes: int = MAX_NODES, today: dt.date | None = None,
+            hierarchy: bool = False) -> Suggestion:
     """The smallest set of units (features; categorical columns as a whole) to drop.
 
     Parameters
@@ -690,6 +844,8 @@ def suggest(verdict: Verdict, *, keep: Sequence[str] = (), prefer: Sequence[str]
     method : "auto" (exact when there are <= ``exact_limit`` candidates), "exact", "greedy".
     max_nodes : budget of the exact search; when spent, the greedy result is returned and
         ``exhaustive`` is False.
+    hierarchy : never drop a main effect while keeping a square or product containing it
+        (module docstring: which terms contain which parents).
     """
     started = time.perf_counter()
     today = today or today_utc()
@@ -709,10 +865,28 @@ def suggest(verdict: Verdict, *, keep: Sequence[str] = (), prefer: Sequence[str]
     priority = {u: (-(ranking.get(u, len(ranking))), units.index(u)) for u in units}
     search = _Search(problems, priority, max_nodes)
     notes: list[str] = []
+    terms: dict[str, tuple[str, ...]] = {}
+    if hierarchy:
+        terms = hierarchy_terms(verdict, units, whole)
+        children: dict[str, set[str]] = {}
+        for term, parents in terms.items():
+            for parent in parents:
+                children.setdefault(parent, set()).add(term)
+        search.children = {u: frozenset(c) for u, c in children.items()}
+        # a kept term keeps its parents (dropping one would drop the term)
+        protected = {u for u in units if search.closure(frozenset({u})) & keep_set} - keep_set
+        if protected:
+            notes.append(f"--hierarchy keeps {', '.join(sorted(protected))}: a square or "
+                         "product kept by --keep contains it")
+            keep_set |= protected
 
-    base, dependency_steps, unresolved = _resolve_dependencies(problems, keep_set, priority)
+    base, dependency_steps, unresolved = _resolve_dependencies(problems, keep_set, priority,
+                                                               parents=set(search.children))
     dropped_by_dependency = list(base)
-    base_f = frozenset(base)
+    for unit in sorted(search.closure(frozenset(base)) - set(base), key=units.index):
+        dependency_steps[unit] = _hierarchy_reason(unit, terms, set(base))
+        dropped_by_dependency.append(unit)
+    base_f = frozenset(dropped_by_dependency)
     state = search.state(base_f)
     droppable = [u for u in units if u not in keep_set and u not in base_f]
     # Every droppable unit that can change a breaching value: the units in a breach, and the
@@ -723,7 +897,11 @@ def suggest(verdict: Verdict, *, keep: Sequence[str] = (), prefer: Sequence[str]
     candidates = [u for u in droppable if u in in_breach or u in drivers]
     if state.breaches and any(b.kind == "singular" for b in state.breaches) and not unresolved:
         candidates = list(droppable)
+    if search.children:  # closed under --hierarchy: a candidate parent brings its terms
+        grown = search.closure(frozenset(candidates))
+        candidates = [u for u in droppable if u in grown]
     chosen: list[str] = []
+    tie: TieBreak | None = None
     exhaustive = True
     used: Literal["none", "exact", "greedy"] = "none"
     lower = 0
@@ -748,15 +926,23 @@ def suggest(verdict: Verdict, *, keep: Sequence[str] = (), prefer: Sequence[str]
                 notes.append(f"the tie-break compared the first {MAX_TIES} minimum-size sets "
                              "found (tried in preference order, then highest VIF first)")
             if solutions:
-                best = min(solutions, key=lambda s: _tie_key(s, base_f, priority, whole))
+                ranked = sorted(solutions, key=lambda s: _tie_key(s, base_f, priority, whole))
+                best = ranked[0]
                 chosen = _order_drops(search, base_f, list(best), priority)
                 lower = len(chosen)
+                tie = _explain_tie(ranked, base_f, priority, whole, bool(prefer),
+                                   search.ties_capped, bool(search.children))
         if not solutions:  # greedy: by choice, budget spent, or no feasible set (best effort)
             if solutions is None:
                 used = "greedy"
             search.max_nodes = search.nodes + 10 * max_nodes + 100
             chosen = _order_drops(search, base_f, search.greedy(base_f, candidates), priority)
             exhaustive = solutions is not None or len(chosen) <= lower
+            tie = TieBreak("greedy", 0, (
+                "the greedy search dropped the highest VIF first"
+                + (" (then the least important in the preference file)" if prefer else "")
+                + " and put back every drop not needed; other sets of this size were not "
+                "compared"))
     final = base_f | frozenset(chosen)
     end_state = search.state(final)
     remaining = tuple(b.label for b in end_state.breaches) + tuple(unresolved)
@@ -780,15 +966,32 @@ def suggest(verdict: Verdict, *, keep: Sequence[str] = (), prefer: Sequence[str]
             solved = False
             remaining = tuple(disagreement)
             notes.append("the judge does not confirm this set, so it is not offered")
+    if terms:
+        for unit in chosen:
+            if unit in terms and set(terms[unit]) & set(final) and unit not in dependency_steps:
+                dependency_steps[unit] = _hierarchy_reason(unit, terms, set(final))
+    if dropped_by_dependency and not chosen:
+        tie = TieBreak("dependency", 0, (
+            "each exact dependency is resolved by dropping one of its columns: the least "
+            "important in the preference file" if prefer else
+            "each exact dependency is resolved by dropping one of its columns: the column it "
+            "is written for (left of the '='), else the last in the design")
+            + (", never a main effect whose square or product is kept (--hierarchy)"
+               if search.children else ""))
     steps = _steps(search, dependency_steps, chosen, dropped_by_dependency)
     kept = tuple(name for j, name in enumerate(whole.names) if whole.column_unit[j] not in final)
+    drops = tuple(dropped_by_dependency + chosen)
     return Suggestion(
-        drops=tuple(dropped_by_dependency + chosen), steps=tuple(steps), kept=kept,
+        drops=drops, steps=tuple(steps), kept=kept,
         method=used, candidates=tuple(candidates), nodes=search.nodes,
         evaluations=search.evaluations,
         seconds=time.perf_counter() - started, exhaustive=exhaustive, lower_bound=lower,
         solved=solved, remaining=remaining,
-        loss=whole.loss(final), notes=tuple(notes))
+        loss=whole.loss(final), notes=tuple(notes),
+        dummies=tuple((u, len(whole.unit_columns[u])) for u in drops if u in whole.group_units),
+        forced=len(dropped_by_dependency), tie_break=tie,
+        centring=_centring_options(verdict, whole),
+        hierarchy=tuple(sorted(terms.items())))
 
 
 def _check_names(names: Iterable[str], units: list[str], whole: _Problem, option: str) -> None:
@@ -813,6 +1016,87 @@ def _tie_key(chosen: frozenset[str], base: frozenset[str], priority: dict[str, P
     return pref, loss if math.isfinite(loss) else math.inf, tuple(sorted(chosen))
 
 
+def _explain_tie(ranked: list[frozenset[str]], base: frozenset[str],
+                 priority: dict[str, Priority], whole: _Problem, prefer: bool, capped: bool,
+                 hierarchy: bool = False) -> TieBreak:
+    """Which rule of the tie-break separated the chosen set from the runner-up, in words."""
+    size = len(ranked[0])
+    sets = f"{len(ranked)}{' or more' if capped else ''} sets of {_count(size, 'drop')}"
+    if hierarchy:
+        sets += " that keep the hierarchy"
+    if len(ranked) == 1:
+        return TieBreak("only", 1, f"it is the only set of {_count(size, 'drop')} that passes"
+                        + (" and keeps the hierarchy" if hierarchy else ""))
+    best, runner = (_tie_key(s, base, priority, whole) for s in ranked[:2])
+    if prefer and best[0] != runner[0]:
+        return TieBreak("preference", len(ranked), (
+            f"{sets} pass; the preference file decided: this set's most important drop is "
+            "listed lower (less important) than in any other set, unlisted features counting "
+            "as least important"))
+    if best[1] != runner[1]:
+        return TieBreak("explained_variance", len(ranked), (
+            f"{sets} pass{'; they tie on the preference file' if prefer else ''}; this one "
+            f"loses the least explained variance ({best[1]:.4g}, next best {runner[1]:.4g})"))
+    return TieBreak("name", len(ranked), (
+        f"{sets} pass and tie on explained variance lost; the first by name was taken"))
+
+
+#: --hierarchy by name: ``a*b``, ``a:b`` (factors), ``a^2``, ``a**2`` (a power >= 2).
+_POWER = re.compile(r"^(?P<base>.+?)(?:\^|\*\*)(?P<power>[2-9]|[1-9][0-9]+)$")
+_FACTORS = re.compile(r"\*|:")
+
+
+def hierarchy_terms(verdict: Verdict, units: list[str], whole: _Problem
+                    ) -> dict[str, tuple[str, ...]]:
+    """Term unit -> its parent units: computed squares/products the structural detector found,
+    and names of the forms ``a*b``, ``a:b``, ``a^2`` and ``a**2`` whose factors are units."""
+    unit_set = set(units)
+    out: dict[str, tuple[str, ...]] = {}
+    for t in verdict.structural:
+        if not t.computed:
+            continue  # a measured quantity is not a model term of its "parent"
+        term = whole.column_unit[t.feature]
+        parents = tuple(dict.fromkeys(whole.column_unit[k] for k in t.parents))
+        if term not in parents:
+            out[term] = parents
+    for unit in units:
+        if unit in out:
+            continue
+        power = _POWER.match(unit)
+        if power and power.group("base") in unit_set:
+            out[unit] = (power.group("base"),)
+            continue
+        factors = [f for f in _FACTORS.split(unit) if f]
+        if len(factors) >= 2 and all(f in unit_set and f != unit for f in factors):
+            out[unit] = tuple(dict.fromkeys(factors))
+    return out
+
+
+def _hierarchy_reason(unit: str, terms: dict[str, tuple[str, ...]], dropped: set[str]) -> str:
+    parents = [p for p in terms.get(unit, ()) if p in dropped]
+    return (f"--hierarchy: it contains {', '.join(parents)}, which is dropped, so it cannot "
+            "stay without its main effect")
+
+
+def _centring_options(verdict: Verdict, whole: _Problem) -> tuple[CentringOption, ...]:
+    """Centre-before-forming for every computed structural term (never a measured one)."""
+    d = verdict.diagnostics
+    limit = verdict.policy.limits.vif
+    out = []
+    for t in verdict.structural:
+        if not t.computed or t.vif_centred is None:
+            continue
+        vifs = centred_vifs(d, t.feature, t.parents, t.slope)
+        if vifs is None:
+            continue
+        out.append(CentringOption(
+            term=whole.names[t.feature], kind=t.kind,
+            parents=tuple(dict.fromkeys(whole.names[k] for k in t.parents)), vif=t.vif,
+            vif_centred=t.vif_centred, max_vif_centred=max(vifs.values()),
+            vif_limit=limit.max if limit.level != "off" else None))
+    return tuple(out)
+
+
 def _order_drops(search: _Search, base: frozenset[str], chosen: list[str],
                  priority: dict[str, Priority]) -> list[str]:
     """Report order: at each step the chosen unit with the highest current VIF."""
@@ -829,9 +1113,11 @@ def _order_drops(search: _Search, base: frozenset[str], chosen: list[str],
 
 
 def _resolve_dependencies(problems: list[_Problem], keep: set[str],
-                          priority: dict[str, Priority]
+                          priority: dict[str, Priority], parents: set[str] | None = None
                           ) -> tuple[list[str], dict[str, str], list[str]]:
-    """One unit per exact dependency (matroid greedy on the null-space basis)."""
+    """One unit per exact dependency (matroid greedy on the null-space basis); ``parents``
+    (--hierarchy: main effects of a square or product) are tried last."""
+    parents = parents or set()
     dropped: list[str] = []
     reasons: dict[str, str] = {}
     unresolved: list[str] = []
@@ -850,7 +1136,8 @@ def _resolve_dependencies(problems: list[_Problem], keep: set[str],
         involved = [u for u in problem.unit_columns
                     if np.any(basis[:, problem.unit_columns[u]] != 0.0)]
         order = sorted((u for u in involved if u not in keep and u not in dropped),
-                       key=lambda u: (priority[u][0], u not in expressed, -priority[u][1]))
+                       key=lambda u: (u in parents, priority[u][0], u not in expressed,
+                                      -priority[u][1]))
         for unit in order:
             if current >= needed:
                 break
@@ -869,6 +1156,10 @@ def _resolve_dependencies(problems: list[_Problem], keep: set[str],
     return dropped, reasons, unresolved
 
 
+_LIMIT_WORDS = {"vif": "VIF limit", "pair": "pairwise-correlation limit",
+                "condition": "condition-number limit", "singular": "rank limit"}
+
+
 def _steps(search: _Search, reasons: dict[str, str], chosen: list[str],
            by_dependency: list[str]) -> list[SuggestStep]:
     whole = search.problems[0]
@@ -876,10 +1167,23 @@ def _steps(search: _Search, reasons: dict[str, str], chosen: list[str],
     dropped: frozenset[str] = frozenset()
 
     conditions: dict[frozenset[str], float | None] = {}
+    bases = [(problem, *problem.null_basis()) for problem in search.problems]
+
+    def singular(drop: frozenset[str]) -> bool:
+        """An exact dependency is left: its VIFs and the condition number are infinite (a
+        Cholesky factor of the rounded correlation matrix would give a finite 1e14)."""
+        for problem, basis, labels in bases:
+            if not labels:
+                continue
+            columns = [int(c) for u in drop if u in problem.unit_columns
+                       for c in problem.unit_columns[u]]
+            if _rank(basis[:, columns]) < _rank(basis):
+                return True
+        return False
 
     def condition(drop: frozenset[str]) -> float | None:
         if drop not in conditions:
-            conditions[drop] = whole.condition_number(drop)
+            conditions[drop] = None if singular(drop) else whole.condition_number(drop)
         return conditions[drop]
 
     def full_state(drop: frozenset[str]) -> _State:
@@ -888,6 +1192,10 @@ def _steps(search: _Search, reasons: dict[str, str], chosen: list[str],
         for st in states:
             for unit, value in st.inflation.items():
                 inflation[unit] = max(value, inflation.get(unit, 0.0))
+        if singular(drop):
+            involved = {problem.column_unit[j] for problem, basis, _ in bases
+                        for j in np.flatnonzero(np.any(basis != 0.0, axis=0))}
+            inflation.update({u: math.inf for u in involved if u in inflation})
         return _State(all(st.feasible for st in states),
                       [b for st in states for b in st.breaches], inflation)
 
@@ -897,12 +1205,16 @@ def _steps(search: _Search, reasons: dict[str, str], chosen: list[str],
         after = full_state(after_set)
         if unit in reasons:
             relation = reasons[unit]  # as the verdict words it; avoid saying the kind twice
-            reason = relation if relation.startswith("exact dependency") \
+            reason = relation if relation.startswith(("exact dependency", "--hierarchy")) \
                 else f"exact dependency ({relation})"
         else:
             own = before.inflation.get(unit, math.nan)
-            kinds = sorted({b.kind for b in before.breaches if unit in b.units})
-            reason = f"VIF {own:.3g}; in breach of {', '.join(kinds) or 'no limit'}"
+            measure = "GVIF^(1/df)" if unit in whole.group_units else "VIF"
+            limits = [_LIMIT_WORDS[k] for k in dict.fromkeys(
+                b.kind for b in before.breaches if unit in b.units)]
+            reason = (f"{measure} {_fmt(own)}, "
+                      + (f"over the {' and '.join(limits)}" if limits else
+                         "its drop lowers a breaching feature's VIF"))
         steps.append(SuggestStep(
             feature=unit, reason=reason, vif_before=before.inflation.get(unit, math.nan),
             max_vif_before=max(before.inflation.values(), default=1.0),
