@@ -106,10 +106,10 @@ def auxiliary_for(d: Diagnostics, feature: int) -> Auxiliary | None:
     if feature not in kept or kept.size < 2:
         return None
     position = int(np.searchsorted(kept, feature))
-    slopes, standardised, intercept, r2, ssr = auxiliary_regression(
+    slopes, standardised, intercept, r2, root_ssr = auxiliary_regression(
         d.inverse_correlation[feature, kept], position, d.means[kept], d.scales[kept])
     others = np.delete(np.arange(kept.size), position)
     df = d.rows - others.size - 1
-    residual_sd = math.sqrt(max(ssr, 0.0) / df) if df > 0 else math.nan
+    residual_sd = root_ssr / math.sqrt(df) if df > 0 else math.nan
     return Auxiliary(feature, kept[others], slopes[others], standardised[others], intercept,
                      float(r2), residual_sd, d.means[kept[others]])

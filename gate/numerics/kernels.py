@@ -7,6 +7,7 @@ evaluation of candidate sets (``gate.remedies.search``).
 
 from __future__ import annotations
 
+import math
 from typing import Literal
 
 import numpy as np
@@ -189,4 +190,4 @@ def auxiliary_regression(inverse_row: FloatArray, feature: int, means: FloatArra
     slopes[feature] = 0.0
     intercept = float(means[feature] - slopes @ means)
     return (np.asarray(slopes), np.asarray(standardised), intercept, 1.0 - 1.0 / pjj,
-            float(scales[feature]) ** 2 / pjj)
+            float(scales[feature]) / math.sqrt(pjj) if pjj > 0 else math.nan)
