@@ -27,11 +27,13 @@ from typing import Any
 import numpy as np
 
 from gate.artefacts.audit import (
+    SUMMARY_VERSION,
     ChainReport,
     entry_problem,
     parse_line,
     read_lines,
     store_path,
+    summary_path,
     verify_chain,
 )
 from gate.errors import GateError, OutputError
@@ -268,6 +270,11 @@ def _waivers(document: dict[str, Any]) -> Iterator[dict[str, Any]]:
 
 def _runs_from_log(log: Path, interner: Interner, record_problems: list[dict[str, Any]],
                    notes: list[str], chain: ChainReport) -> Iterator[tuple[Run, dict[str, Any]]]:
+    """The runs of a log. A stored verdict is always re-hashed (a missing or altered one is a
+    record problem); its fields are read from its summary when the entry records a summary
+    whose bytes still hash to it (a few KiB of JSON instead of the whole verdict), else from
+    the verdict itself."""
+    unusable: list[str] = []
     for number, line, complete in read_lines(log):
         if not complete:
             continue  # the torn tail: the chain report names it
@@ -298,7 +305,10 @@ def _runs_from_log(log: Path, interner: Interner, record_problems: list[dict[str
                 if hashlib.sha256(data).hexdigest() != sha:
                     problem = "stored verdict altered (its sha256 no longer matches)"
                 else:
-                    parsed = _parse_document(data)
+                    summary, why = _read_summary(log, entry["verdict"], sha)
+                    parsed = summary if summary is not None else _parse_document(data)
+                    if why is not None:
+                        unusable.append(f"line {number} ({why})")
                     if parsed is None:
                         problem = "stored verdict is not a verdict.json"
                     else:
@@ -321,6 +331,42 @@ def _runs_from_log(log: Path, interner: Interner, record_problems: list[dict[str
                 run = reduce_verdict(document, f"line {number}", interner)
         run.after_break = chain.bad_line is not None and number >= chain.bad_line
         yield run, document
+    if unusable:
+        shown = ", ".join(unusable[:3]) + (f" and {len(unusable) - 3} more"
+                                           if len(unusable) > 3 else "")
+        notes.append(f"{len(unusable)} stored run summar{'ies' if len(unusable) > 1 else 'y'} "
+                     f"could not be used ({shown}); those runs were read from their full "
+                     "stored verdicts instead, so the figures are unaffected (the summaries "
+                     "are derived data, not part of the record)")
+
+
+def _read_summary(log: Path, field: dict[str, Any], sha: str
+                  ) -> tuple[dict[str, Any] | None, str | None]:
+    """(the pruned verdict kept as the summary of verdict ``sha``, None) when the entry
+    records one and it hashes to the recorded ``summary_sha256``; else (None, why) to fall
+    back on the verdict; (None, None) when no summary was recorded (older entries)."""
+    expected = field.get("summary_sha256")
+    if expected is None:
+        return None, None
+    try:
+        data = summary_path(log, sha).read_bytes()
+    except FileNotFoundError:
+        return None, "summary missing"
+    except OSError as exc:
+        return None, f"summary unreadable: {exc.strerror or exc}"
+    if hashlib.sha256(data).hexdigest() != expected:
+        return None, "summary altered: its sha256 differs from the one in the entry"
+    try:
+        value = json.loads(data)
+    except (ValueError, RecursionError):
+        value = None
+    if not isinstance(value, dict) or value.get("summary_version") != SUMMARY_VERSION or \
+            value.get("verdict_sha256") != sha or not isinstance(value.get("verdict"), dict):
+        return None, "summary of another form or another verdict"
+    document: dict[str, Any] = value["verdict"]
+    if "status" not in document or "created_at" not in document:
+        return None, "summary of another form or another verdict"
+    return document, None
 
 
 def _parse_document(data: bytes) -> dict[str, Any] | None:
