@@ -17,6 +17,7 @@ import html
 import io
 import json
 import math
+import re
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
@@ -95,10 +96,13 @@ footer { padding: 0 28px 24px; color: #6a7080; font-size: 12px; }
 """
 
 
+_CONTROL = re.compile("[\x00-\x1f\x7f]")
+
+
 def _e(value: object) -> str:
     """Escaped text, control characters shown (never raw)."""
     text = str(value)
-    if any(ord(ch) < 32 or ord(ch) == 127 for ch in text):
+    if _CONTROL.search(text):
         text = text.encode("unicode_escape").decode("ascii")
     return html.escape(text)
 
