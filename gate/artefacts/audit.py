@@ -111,7 +111,9 @@ def summarise(verdict: dict[str, Any], verdict_sha256: str) -> bytes:
     "verdict_sha256", "verdict"}``, where ``verdict`` is a pruned copy holding exactly the
     fields `gate history` reads (:func:`gate.artefacts.history.reduce_verdict` and the
     waivers), each value copied as it is, so reading the summary gives the same run as
-    reading the verdict. Deterministic: the same verdict always gives the same bytes.
+    reading the verdict (the VIF map, whose order canonical JSON would lose, is kept as
+    ``diagnostics.vif_in_order``: [[feature, value], ...]; :func:`summary_document` turns it
+    back). Deterministic: the same verdict always gives the same bytes.
     Raises ValueError when a value is not JSON (a NaN), in which case no summary is kept."""
     pruned: dict[str, Any] = _pick(verdict, ("created_at", "label", "status"))
     table, policy = verdict.get("table"), verdict.get("policy")
@@ -125,12 +127,32 @@ def summarise(verdict: dict[str, Any], verdict_sha256: str) -> bytes:
     diagnostics = verdict.get("diagnostics")
     if isinstance(diagnostics, dict):
         pruned["diagnostics"] = _pick(diagnostics, ("condition_number", "vif"))
+        vif = diagnostics.get("vif")
+        if isinstance(vif, dict):  # canonical JSON sorts keys; the features' order matters
+            del pruned["diagnostics"]["vif"]
+            pruned["diagnostics"]["vif_in_order"] = [[k, v] for k, v in vif.items()]
     for key, names in (("findings", _FINDING_FIELDS), ("waivers", _WAIVER_FIELDS)):
         items = verdict.get(key)
         if isinstance(items, list):
             pruned[key] = [_pick(item, names) for item in items if isinstance(item, dict)]
     return canonical({"summary_version": SUMMARY_VERSION, "verdict": pruned,
                       "verdict_sha256": verdict_sha256})
+
+
+def summary_document(summary: dict[str, Any]) -> dict[str, Any] | None:
+    """The pruned verdict inside a parsed summary, the VIF map restored in its order; None
+    when it is not of this form."""
+    document = summary.get("verdict")
+    if summary.get("summary_version") != SUMMARY_VERSION or not isinstance(document, dict):
+        return None
+    diagnostics = document.get("diagnostics")
+    if isinstance(diagnostics, dict) and "vif_in_order" in diagnostics:
+        pairs = diagnostics.pop("vif_in_order")
+        try:
+            diagnostics["vif"] = {str(k): v for k, v in pairs}
+        except (TypeError, ValueError):
+            return None
+    return document
 
 
 def check_head(head: str) -> str:

@@ -30,12 +30,12 @@ import numpy as np
 
 from gate.artefacts.audit import (
     SUMMARY_SUFFIX,
-    SUMMARY_VERSION,
     ChainReport,
     entry_problem,
     parse_line,
     read_lines,
     store_path,
+    summary_document,
     verify_chain,
 )
 from gate.errors import GateError, OutputError
@@ -373,11 +373,9 @@ def _read_summary(store: str, field: dict[str, Any], sha: str
         value = json.loads(data)
     except (ValueError, RecursionError):
         value = None
-    if not isinstance(value, dict) or value.get("summary_version") != SUMMARY_VERSION or \
-            value.get("verdict_sha256") != sha or not isinstance(value.get("verdict"), dict):
-        return None, "summary of another form or another verdict"
-    document: dict[str, Any] = value["verdict"]
-    if "status" not in document or "created_at" not in document:
+    document = summary_document(value) if isinstance(value, dict) and \
+        value.get("verdict_sha256") == sha else None
+    if document is None or "status" not in document or "created_at" not in document:
         return None, "summary of another form or another verdict"
     return document, None
 
