@@ -21,6 +21,8 @@ load on the machine):
 5. Dask, 2 local worker processes, warm cluster (start-up timed separately): ``gate check
    --engine dask --scheduler ADDRESS`` / ``gate check`` on the 1M x 100 file. Target <= 1.5.
    The two verdicts' diagnostics are compared too (max relative difference).
+6. `gate history LOG --out DIR` on an audit log of 10,000 runs x 100 features with its stored
+   verdicts (benchmarks/history.py): wall, CPU and peak RSS of the whole process. Target <= 10 s.
 """
 
 from __future__ import annotations
@@ -114,7 +116,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--keep", metavar="DIR", type=Path,
                         help="generate the data here and keep it (reused when present)")
     parser.add_argument("--skip", metavar="NAME", action="append", default=[],
-                        choices=("main", "peer", "stream", "wide", "dask"),
+                        choices=("main", "peer", "stream", "wide", "dask", "history"),
                         help="leave out one measurement (repeatable)")
     args = parser.parse_args(argv)
     sizes = QUICK if args.quick else FULL
@@ -151,6 +153,12 @@ def main(argv: Sequence[str] | None = None) -> int:
                 "wide", wide_file, floor, folder, repeat, target=3.0, sizes=sizes.wide)
         if "dask" not in args.skip:
             results["dask"] = bench_dask(main_file, folder, repeat, sizes)
+        if "history" not in args.skip:  # (6) `gate history`, see benchmarks/history.py
+            from benchmarks.history import bench_history
+
+            _progress("gate history")
+            runs = 500 if args.quick else 10_000
+            results["history"] = bench_history(folder / f"history_{runs}", runs, 100, repeat)
     report["load_average_end"] = list(os.getloadavg())
     _print_table(report)
     if args.json:
@@ -418,6 +426,10 @@ def _print_table(report: dict[str, Any]) -> None:
             f"{x['dask_seconds']:.2f} s vs local {x['local_seconds']:.2f} s, ratio "
             f"{x['ratio']:.2f} (target <= 1.5: {verdict(x['ratio'] <= 1.5)}); diagnostics "
             f"agree to {x['max_relative_difference']:.1e}")
+    if "history" in r:
+        from benchmarks.history import describe
+
+        lines.append(f"(6) {describe(r['history'])}")
     lines.append(f"load average at end: {', '.join(f'{v:.2f}' for v in report['load_average_end'])}")
     print("\n".join(lines))
 

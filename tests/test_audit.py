@@ -28,6 +28,8 @@ from gate.artefacts.audit import (
     entry_hash,
     repair_log,
     store_path,
+    summarise,
+    summary_path,
     verify_chain,
 )
 from gate.artefacts.outputs import write_check_outputs
@@ -456,3 +458,18 @@ def test_cli_audit_verify_exit_codes_and_head(tmp_path: Path, run_cli: Any,
     assert bad.code == 1 and "line 1" in bad.err
     missing = run_cli(["audit", "verify", tmp_path / "nope.jsonl"])
     assert missing.code == 2 and "not found" in missing.err
+
+
+def test_run_summary_is_kept_and_its_hash_chained(tmp_path: Path, verdict: Verdict) -> None:
+    log = tmp_path / "audit.jsonl"
+    document = _document(verdict, 0)
+    entry = append_entry(log, document)
+    kept = summary_path(log, entry["verdict"]["sha256"])
+    data = kept.read_bytes()
+    assert entry["verdict"]["summary_sha256"] == hashlib.sha256(data).hexdigest()
+    assert data == summarise(json.loads(document), entry["verdict"]["sha256"])  # deterministic
+    assert len(data) < len(document)
+    kept.write_bytes(b"{}")  # a damaged summary is derived data: the record stays complete
+    assert verify_chain(log).ok
+    append_entry(log, document)  # the same verdict again puts its summary right
+    assert kept.read_bytes() == data

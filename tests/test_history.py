@@ -9,11 +9,12 @@ import json
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pytest
 from conftest import make_clean_frame, make_docks_frame
 
 from gate.api import check
-from gate.artefacts.audit import append_entry, store_path
+from gate.artefacts.audit import append_entry, store_path, summary_path
 from gate.artefacts.history import build_history, finding_identity
 from gate.artefacts.verdict_json import verdict_json
 
@@ -146,3 +147,69 @@ def test_finding_identity_ignores_feature_order_and_keeps_segment() -> None:
     assert a == finding_identity({"rule": "vif", "features": ["a", "b"]}) == (
         "vif", "feature", ("a", "b"), None)
     assert finding_identity({"rule": "vif", "features": ["a"], "segment": "north"})[3] == "north"
+
+
+def _document_without_time(folder: Path) -> dict[str, Any]:
+    document = json.loads((folder / "history.json").read_text())
+    document.pop("generated_at")
+    document.pop("notes")
+    return document
+
+
+def test_run_summaries_give_the_same_history_as_the_verdicts(tmp_path: Path,
+                                                               run_cli: Any) -> None:
+    log = _record(tmp_path)
+    summaries = sorted((tmp_path / "verdicts").glob("*.summary"))
+    assert len(summaries) == 6
+    result = run_cli(["history", log, "--out", tmp_path / "with"])
+    assert result.code == 0, result.err
+    for path in summaries:  # a log written before summaries: every verdict is read whole
+        path.unlink()
+    result = run_cli(["history", log, "--out", tmp_path / "without"])
+    assert result.code == 0, result.err  # derived data: missing summaries are no record gap
+    assert _document_without_time(tmp_path / "with") == \
+        _document_without_time(tmp_path / "without")
+    notes = json.loads((tmp_path / "without" / "history.json").read_text())["notes"]
+    assert any("6 stored run summaries could not be used" in n and "summary missing" in n
+               for n in notes)
+
+
+def test_tampered_summary_is_ignored_and_noted(tmp_path: Path, run_cli: Any) -> None:
+    log = _record(tmp_path)
+    entry = json.loads(log.read_bytes().split(b"\n")[1])  # run 2 failed
+    summary = summary_path(log, entry["verdict"]["sha256"])
+    summary.write_bytes(summary.read_bytes().replace(b'"status":"fail"', b'"status":"pass"'))
+    result = run_cli(["history", log, "--out", tmp_path / "out"])
+    assert result.code == 0, result.err
+    document = json.loads((tmp_path / "out" / "history.json").read_text())
+    assert document["groups"][0]["runs"][1]["status"] == "fail"  # read from the verdict
+    assert any("line 2 (summary altered" in n for n in document["notes"])
+    html = (tmp_path / "out" / "history.html").read_text()
+    assert "summary altered" in html
+
+
+def test_pixel_column_decimation_keeps_every_peak_and_trough() -> None:
+    """Min/max decimation (checked against a direct per-column loop): every run's value lies
+    within its column's drawn range, and the extremes of the whole series are drawn."""
+    from gate.artefacts.history_html import _pixel_columns
+
+    rng = np.random.default_rng(5)
+    x = np.sort(rng.uniform(0.0, 100.0, 10_000))
+    values = rng.lognormal(0.0, 0.3, (10_000, 3))
+    values[4_321, 1] = 250.0  # one spike in one run
+    values[77, 2] = np.inf  # an exact dependency
+    values[500:540, 0] = np.nan  # runs without a value
+    line_x, points, infinite, at = _pixel_columns(x, values, 300)
+    assert line_x.size == points.shape[0] <= 600 and at.size <= 300
+    assert np.nanmax(points[:, 1]) == 250.0
+    finite = np.where(np.isfinite(values), values, np.nan)
+    assert np.nanmin(points, axis=0).tolist() == np.nanmin(finite, axis=0).tolist()
+    assert infinite[:, 2].sum() == 1 and at[infinite[:, 2]][0] <= x[77]
+    bins = np.minimum((x / (x.max() - x.min()) * 300).astype(int), 299)
+    low, high = points[0::2], points[1::2]
+    for column, b in enumerate(np.unique(bins)):
+        inside = finite[bins == b]
+        np.testing.assert_array_equal(low[column], np.nanmin(inside, axis=0)
+                                      if not np.isnan(inside).all() else low[column])
+        assert np.all((inside >= low[column]) | np.isnan(inside))
+        assert np.all((inside <= high[column]) | np.isnan(inside))

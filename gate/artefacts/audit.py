@@ -18,6 +18,12 @@ values are copied from the verdict the entry records.
 * The store: the exact verdict.json bytes go to ``verdicts/<sha256>.json`` beside the log
   (written before the entry, atomically). The log plus the store is the whole record;
   :func:`verify_chain` re-hashes every stored verdict and names any that is missing.
+* Beside each stored verdict, ``verdicts/<sha256>.summary`` keeps the few fields `gate
+  history` reads (:func:`summarise`: a pruned copy of the verdict, a few KiB instead of tens),
+  and the entry records its sha256 as ``verdict.summary_sha256``, so the chain covers it too.
+  The summary is derived data, not part of the record: a reader re-hashes it and falls back
+  to the full verdict when it is missing or altered. Entries written without it (and logs
+  written before it existed) simply have no ``summary_sha256``.
 
 Logs written before this form (entries without ``format``; their ``prev`` is the sha256 of the
 previous *line*, and they have no stored verdict) are read as they are: such entries may only
@@ -38,6 +44,7 @@ A hash chain cannot notice entries cut off the *end* of the file; compare the he
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import fcntl
 import hashlib
@@ -60,6 +67,8 @@ ENTRY_KEYS = ("created_at", "format", "hash", "label", "policy", "prev", "seq", 
 LEGACY_KEYS = ("hash", "label", "policy_sha256", "prev", "seq", "status", "table",
                "table_sha256", "time", "tool_version", "verdict_sha256")
 STORE_DIR = "verdicts"
+SUMMARY_SUFFIX = ".summary"  # not .json: a folder of verdicts never mistakes one for a verdict
+SUMMARY_VERSION = 1
 #: Longer lines are not entries (an entry is well under 2 KiB); bounds what verify parses.
 MAX_LINE_BYTES = 65_536
 MAX_ECHO = 80  # characters of a foreign value echoed in a message
@@ -82,6 +91,68 @@ def entry_hash(entry: dict[str, Any]) -> str:
 def store_path(log: str | Path, verdict_sha256: str) -> Path:
     """Where the verdict with this sha256 is kept: ``verdicts/<sha256>.json`` beside the log."""
     return Path(log).parent / STORE_DIR / f"{verdict_sha256}.json"
+
+
+def summary_path(log: str | Path, verdict_sha256: str) -> Path:
+    """Where the summary of the verdict with this sha256 is kept (see :func:`summarise`)."""
+    return Path(log).parent / STORE_DIR / f"{verdict_sha256}{SUMMARY_SUFFIX}"
+
+
+_FINDING_FIELDS = ("features", "level", "rule", "segment", "subject", "waived")
+_WAIVER_FIELDS = ("expires", "features", "owner", "reason", "rule", "state")
+
+
+def _pick(value: Any, names: tuple[str, ...]) -> dict[str, Any]:
+    return {k: value[k] for k in names if k in value}
+
+
+def summarise(verdict: dict[str, Any], verdict_sha256: str) -> bytes:
+    """The summary of a parsed verdict.json: canonical JSON of ``{"summary_version",
+    "verdict_sha256", "verdict"}``, where ``verdict`` is a pruned copy holding exactly the
+    fields `gate history` reads (:func:`gate.artefacts.history.reduce_verdict` and the
+    waivers), each value copied as it is, so reading the summary gives the same run as
+    reading the verdict (the VIF map, whose order canonical JSON would lose, is kept as
+    ``diagnostics.vif_in_order``: [[feature, value], ...]; :func:`summary_document` turns it
+    back). Deterministic: the same verdict always gives the same bytes.
+    Raises ValueError when a value is not JSON (a NaN), in which case no summary is kept."""
+    pruned: dict[str, Any] = _pick(verdict, ("created_at", "label", "status"))
+    table, policy = verdict.get("table"), verdict.get("policy")
+    if isinstance(table, dict):
+        pruned["table"] = _pick(table, ("sha256", "source"))
+    if isinstance(policy, dict):
+        pruned["policy"] = _pick(policy, ("name", "sha256"))
+        limits = policy.get("limits")
+        if isinstance(limits, dict) and isinstance(limits.get("vif"), dict):
+            pruned["policy"]["limits"] = {"vif": _pick(limits["vif"], ("max",))}
+    diagnostics = verdict.get("diagnostics")
+    if isinstance(diagnostics, dict):
+        pruned["diagnostics"] = _pick(diagnostics, ("condition_number", "vif"))
+        vif = diagnostics.get("vif")
+        if isinstance(vif, dict):  # canonical JSON sorts keys; the features' order matters
+            del pruned["diagnostics"]["vif"]
+            pruned["diagnostics"]["vif_in_order"] = [[k, v] for k, v in vif.items()]
+    for key, names in (("findings", _FINDING_FIELDS), ("waivers", _WAIVER_FIELDS)):
+        items = verdict.get(key)
+        if isinstance(items, list):
+            pruned[key] = [_pick(item, names) for item in items if isinstance(item, dict)]
+    return canonical({"summary_version": SUMMARY_VERSION, "verdict": pruned,
+                      "verdict_sha256": verdict_sha256})
+
+
+def summary_document(summary: dict[str, Any]) -> dict[str, Any] | None:
+    """The pruned verdict inside a parsed summary, the VIF map restored in its order; None
+    when it is not of this form."""
+    document = summary.get("verdict")
+    if summary.get("summary_version") != SUMMARY_VERSION or not isinstance(document, dict):
+        return None
+    diagnostics = document.get("diagnostics")
+    if isinstance(diagnostics, dict) and "vif_in_order" in diagnostics:
+        pairs = diagnostics.pop("vif_in_order")
+        try:
+            diagnostics["vif"] = {str(k): v for k, v in pairs}
+        except (TypeError, ValueError):
+            return None
+    return document
 
 
 def check_head(head: str) -> str:
@@ -113,8 +184,20 @@ def append_entry(path: str | Path, document: bytes) -> dict[str, Any]:
         raise OutputError(f"{file}: the document to record is not a verdict.json; record the "
                           "bytes `gate check` wrote") from None
     digest = hashlib.sha256(document).hexdigest()
-    fields["verdict"] = {"sha256": digest}
+    fields["verdict"] = keep_verdict(file, document, verdict, digest)
+    return _append(file, fields)
+
+
+def keep_verdict(file: Path, document: bytes, verdict: dict[str, Any],
+                 digest: str) -> dict[str, Any]:
+    """Write the verdict bytes (and its summary) into the store; return the entry's
+    ``verdict`` field: ``{"sha256"}`` plus ``"summary_sha256"`` when a summary was kept."""
     kept = store_path(file, digest)
+    field: dict[str, Any] = {"sha256": digest}
+    try:
+        summary = summarise(verdict, digest)
+    except ValueError:  # a value that is not JSON: the history reads the verdict itself
+        summary = None
     try:
         if not kept.exists():  # content-addressed: an existing copy is the same bytes
             write_atomic(kept, document)
@@ -122,7 +205,20 @@ def append_entry(path: str | Path, document: bytes) -> dict[str, Any]:
         raise OutputError(f"{kept}: cannot keep the verdict beside the audit log "
                           f"({exc.strerror or exc}); choose a writable --audit-log folder"
                           ) from None
-    return _append(file, fields)
+    if summary is not None:
+        place = summary_path(file, digest)
+        try:
+            same = place.read_bytes() == summary
+        except OSError:
+            same = False
+        # Recorded even when the copy cannot be written (a full disk): the summary is a
+        # function of the verdict, so its hash still says what it must be; a reader finds it
+        # missing and reads the verdict. The entry's length never depends on the disk.
+        field["summary_sha256"] = hashlib.sha256(summary).hexdigest()
+        with contextlib.suppress(OSError):
+            if not same:  # deterministic: a damaged copy is put right, a good one kept
+                write_atomic(place, summary)
+    return field
 
 
 def _append(file: Path, fields: dict[str, Any]) -> dict[str, Any]:

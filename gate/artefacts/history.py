@@ -19,7 +19,9 @@ import fnmatch
 import hashlib
 import json
 import math
-from collections.abc import Iterator
+import multiprocessing
+import os
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -27,11 +29,13 @@ from typing import Any
 import numpy as np
 
 from gate.artefacts.audit import (
+    SUMMARY_SUFFIX,
     ChainReport,
     entry_problem,
     parse_line,
     read_lines,
     store_path,
+    summary_document,
     verify_chain,
 )
 from gate.errors import GateError, OutputError
@@ -78,6 +82,7 @@ class Run:
     findings: frozenset[int] = frozenset()
     breaching: frozenset[int] = frozenset()  # features with a fail/warn VIF finding
     after_break: bool = False
+    line: int = 0  # of the audit log (0 for a verdict file)
 
 
 @dataclass
@@ -99,6 +104,7 @@ class Interner:
         return self.keys.setdefault(key, len(self.keys))
 
     raw: dict[Any, int] = field(default_factory=dict)
+    sets: dict[frozenset[int], frozenset[int]] = field(default_factory=dict)
 
     def finding(self, finding: dict[str, Any]) -> int:
         """The id of :func:`finding_identity` of ``finding``, memoised on its raw fields."""
@@ -157,6 +163,7 @@ class Group:
     policy_name: str
     runs: list[Run] = field(default_factory=list)
     waivers: dict[tuple[str, tuple[str, ...], str, str], WaiverSeen] = field(default_factory=dict)
+    derived: dict[Any, Any] = field(default_factory=dict, repr=False)  # memo of derived views
 
 
 @dataclass
@@ -252,7 +259,10 @@ def reduce_verdict(document: dict[str, Any], where: str, interner: Interner) -> 
             keys.add(interner.finding(finding))
             if finding.get("rule") == "vif" and isinstance(finding.get("features"), list):
                 breaching.update(interner.name(str(f)) for f in finding["features"])
-    run.counts, run.findings, run.breaching = counts, frozenset(keys), frozenset(breaching)
+    run.counts = counts
+    # Consecutive runs mostly share their findings: keep one copy of each set.
+    run.findings = interner.sets.setdefault(frozenset(keys), frozenset(keys))
+    run.breaching = interner.sets.setdefault(frozenset(breaching), frozenset(breaching))
     return run
 
 
@@ -268,12 +278,20 @@ def _waivers(document: dict[str, Any]) -> Iterator[dict[str, Any]]:
 
 
 def _runs_from_log(log: Path, interner: Interner, record_problems: list[dict[str, Any]],
-                   notes: list[str], chain: ChainReport) -> Iterator[tuple[Run, dict[str, Any]]]:
+                   notes: list[str]) -> Iterator[tuple[Run, dict[str, Any]]]:
+    """The runs of a log. A stored verdict is always re-hashed (a missing or altered one is a
+    record problem); its fields are read from its summary when the entry records a summary
+    whose bytes still hash to it (a few KiB of JSON instead of the whole verdict), else from
+    the verdict itself."""
+    unusable: list[str] = []
+    store = str(store_path(log, "0" * 64).parent)
     for number, line, complete in read_lines(log):
         if not complete:
             continue  # the torn tail: the chain report names it
         entry = parse_line(line)
-        if isinstance(entry, str) or entry_problem(entry) is not None:
+        if isinstance(entry, str):
+            continue  # the chain report names the first such line
+        if entry_problem(entry) is not None:
             continue  # the chain report names the first such line
         legacy = "format" not in entry
         if legacy:
@@ -286,11 +304,12 @@ def _runs_from_log(log: Path, interner: Interner, record_problems: list[dict[str
             document: dict[str, Any] = {}
         else:
             sha = entry["verdict"]["sha256"]
-            kept = store_path(log, sha)
+            kept = os.path.join(store, f"{sha}.json")  # = store_path(log, sha), cheaper
             problem = None
             document = {}
             try:
-                data = kept.read_bytes()
+                with open(kept, "rb") as handle:
+                    data = handle.read()
             except FileNotFoundError:
                 problem = "stored verdict missing"
             except OSError as exc:
@@ -299,7 +318,10 @@ def _runs_from_log(log: Path, interner: Interner, record_problems: list[dict[str
                 if hashlib.sha256(data).hexdigest() != sha:
                     problem = "stored verdict altered (its sha256 no longer matches)"
                 else:
-                    parsed = _parse_document(data)
+                    summary, why = _read_summary(store, entry["verdict"], sha)
+                    parsed = summary if summary is not None else _parse_document(data)
+                    if why is not None:
+                        unusable.append(f"line {number} ({why})")
                     if parsed is None:
                         problem = "stored verdict is not a verdict.json"
                     else:
@@ -320,8 +342,43 @@ def _runs_from_log(log: Path, interner: Interner, record_problems: list[dict[str
                           problem=problem)
             else:
                 run = reduce_verdict(document, f"line {number}", interner)
-        run.after_break = chain.bad_line is not None and number >= chain.bad_line
+        run.line = number
         yield run, document
+    if unusable:
+        shown = ", ".join(unusable[:3]) + (f" and {len(unusable) - 3} more"
+                                           if len(unusable) > 3 else "")
+        notes.append(f"{len(unusable)} stored run summar{'ies' if len(unusable) > 1 else 'y'} "
+                     f"could not be used ({shown}); those runs were read from their full "
+                     "stored verdicts instead, so the figures are unaffected (the summaries "
+                     "are derived data, not part of the record)")
+
+
+def _read_summary(store: str, field: dict[str, Any], sha: str
+                  ) -> tuple[dict[str, Any] | None, str | None]:
+    """(the pruned verdict kept as the summary of verdict ``sha``, None) when the entry
+    records one and it hashes to the recorded ``summary_sha256``; else (None, why) to fall
+    back on the verdict; (None, None) when no summary was recorded (older entries)."""
+    expected = field.get("summary_sha256")
+    if expected is None:
+        return None, None
+    try:  # the file summary_path(log, sha) names
+        with open(os.path.join(store, f"{sha}{SUMMARY_SUFFIX}"), "rb") as handle:
+            data = handle.read()
+    except FileNotFoundError:
+        return None, "summary missing"
+    except OSError as exc:
+        return None, f"summary unreadable: {exc.strerror or exc}"
+    if hashlib.sha256(data).hexdigest() != expected:
+        return None, "summary altered: its sha256 differs from the one in the entry"
+    try:
+        value = json.loads(data)
+    except (ValueError, RecursionError):
+        value = None
+    document = summary_document(value) if isinstance(value, dict) and \
+        value.get("verdict_sha256") == sha else None
+    if document is None or "status" not in document or "created_at" not in document:
+        return None, "summary of another form or another verdict"
+    return document, None
 
 
 def _parse_document(data: bytes) -> dict[str, Any] | None:
@@ -360,6 +417,27 @@ def _runs_from_folder(folder: Path, interner: Interner, notes: list[str]
         notes.append("the folder holds no .json files")
 
 
+def _verify_alongside(log: Path) -> Callable[[], ChainReport]:
+    """Start checking the log's chain in a second process (the reading of the runs goes on
+    meanwhile; each costs about a second at 10,000 entries); return the wait for its report.
+    With one CPU, or where fork is unavailable, the chain is checked here, first."""
+    if (os.cpu_count() or 1) < 2 or "fork" not in multiprocessing.get_all_start_methods():
+        report = verify_chain(log, check_store=False)
+        return lambda: report
+    pool = multiprocessing.get_context("fork").Pool(1)
+    pending = pool.apply_async(verify_chain, (log,), {"check_store": False})
+
+    def wait() -> ChainReport:
+        try:
+            report: ChainReport = pending.get()
+            return report
+        finally:
+            pool.close()
+            pool.join()
+
+    return wait
+
+
 def parse_day(text: str | None, option: str) -> dt.date | None:
     if text is None:
         return None
@@ -393,8 +471,8 @@ def build_history(source: str | Path, *, horizon: int = WAIVER_EXPIRY_HORIZON_DA
         runs: Iterator[tuple[Run, dict[str, Any]]] = _runs_from_folder(path, interner, notes)
     elif path.is_file():
         kind = "audit-log"
-        chain = verify_chain(path, check_store=False)
-        runs = _runs_from_log(path, interner, record_problems, notes, chain)
+        verified = _verify_alongside(path)
+        runs = _runs_from_log(path, interner, record_problems, notes)
     elif path.exists():
         raise GateError(f"{path}: not a file or folder; give an audit log or a folder of "
                         "verdict.json files")
@@ -425,6 +503,12 @@ def build_history(source: str | Path, *, horizon: int = WAIVER_EXPIRY_HORIZON_DA
                     run.created_at, run.created_at, str(waiver.get("state")))
             seen.last_seen, seen.last_state = run.created_at, str(waiver.get("state"))
             seen.runs += 1
+    if kind == "audit-log":
+        chain = verified()
+        if chain.bad_line is not None:
+            for group in groups.values():
+                for run in group.runs:
+                    run.after_break = run.line >= chain.bad_line
     if filtered:
         notes.append(f"{filtered} run{'s' if filtered > 1 else ''} left out by the filters")
     ordered = []
@@ -469,28 +553,61 @@ def policy_changes(group: Group) -> list[bool]:
 
 
 def breached_features(group: Group) -> list[int]:
-    """Features that ever breached (a fail/warn VIF finding), worst peak first."""
-    peak: dict[int, float] = {}
-    for run in group.runs:
-        for index in run.breaching:
-            peak.setdefault(index, 0.0)
+    """Features that ever breached (a fail/warn VIF finding), worst peak first.
+
+    A feature's peak is its largest VIF over the runs that had a breaching feature, from the
+    run where it first breached on."""
+    cached = group.derived.get("breached")
+    if cached is not None:
+        return list(cached)
+    first: dict[int, int] = {}
+    breaching_runs = np.zeros(len(group.runs), dtype=bool)
+    for pos, run in enumerate(group.runs):
         if run.breaching:
-            for index, value in zip(run.vif_index.tolist(), run.vif_value.tolist()):
-                if index in peak and not math.isnan(value):
-                    peak[index] = max(peak[index], value)
-    return sorted(peak, key=lambda k: (-peak[k], k))
+            breaching_runs[pos] = True
+            for index in run.breaching:
+                first.setdefault(index, pos)
+    features = list(first)
+    series = vif_series(group, features)
+    counted = breaching_runs[:, None] & (np.arange(len(group.runs))[:, None]
+                                         >= np.array([first[f] for f in features])[None, :])
+    values = np.where(counted & ~np.isnan(series), series, -np.inf).reshape(len(group.runs),
+                                                                            len(features))
+    peak = np.maximum(values.max(axis=0, initial=-np.inf), 0.0)
+    peaks = dict(zip(features, peak.tolist()))
+    ordered = sorted(peaks, key=lambda k: (-peaks[k], k))
+    group.derived["breached"] = ordered
+    return list(ordered)
 
 
 def vif_series(group: Group, features: list[int]) -> np.ndarray:
     """runs x features VIF matrix (NaN where a run has no value; inf for infinite)."""
+    key = ("series", tuple(features))
+    cached = group.derived.get(key)
+    if cached is not None:
+        return cached.copy()  # type: ignore[no-any-return]
     out = np.full((len(group.runs), len(features)), np.nan)
-    column = {f: c for c, f in enumerate(features)}
-    for r, run in enumerate(group.runs):
-        for index, value in zip(run.vif_index.tolist(), run.vif_value.tolist()):
-            c = column.get(index)
-            if c is not None:
-                out[r, c] = value
-    return out
+    if features:
+        top = max(features)
+        column = np.full(top + 1, -1, dtype=np.int64)
+        column[np.array(features, dtype=np.int64)] = np.arange(len(features))
+        layouts: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+        for r, run in enumerate(group.runs):
+            index = run.vif_index
+            if not index.size:
+                continue
+            # Runs with the same features share one index array (Interner.vif_arrays).
+            known = layouts.get(id(index))
+            if known is None or known[0] is not index:
+                inside = index <= top
+                columns = np.full(index.size, -1, dtype=np.int64)
+                columns[inside] = column[index[inside]]
+                wanted = columns >= 0
+                known = layouts[id(index)] = (index, wanted, columns[wanted])
+            _, wanted, columns = known
+            out[r, columns] = run.vif_value[wanted]
+    group.derived[key] = out
+    return out.copy()
 
 
 def waiver_rows(group: Group, today: dt.date, horizon: int) -> list[tuple[str, WaiverSeen]]:
