@@ -63,6 +63,7 @@ class Auxiliary:
         """How many regressors the text leaves out by the SHOWN_TERM rule."""
         return int(np.count_nonzero(np.abs(self.standardised) < SHOWN_TERM))
 
+    @np.errstate(over="ignore", invalid="ignore")  # columns ~2^1000 apart: slopes beyond range
     def equation(self, names: tuple[str, ...]) -> str:
         """``y ≈ 1.00·a + 0.980·b + 0.310 (R² 0.99999, residual sd 0.004)``."""
         parts: list[str] = []
@@ -97,6 +98,7 @@ def r2_text(r2: float) -> str:
     return f"{r2:.{decimals}f}"
 
 
+@np.errstate(over="ignore", invalid="ignore")  # columns ~2^1000 apart: slopes beyond range
 def auxiliary_for(d: Diagnostics, feature: int) -> Auxiliary | None:
     """The auxiliary regression of ``feature``; None inside an exact dependency, for a constant,
     or when no other column is left to regress on."""

@@ -54,11 +54,12 @@ class IdentifierLike:
 def is_row_number(rows: int, mean: float, centred_norm: float) -> bool:
     """Whether n values with this mean and centred norm can be the consecutive integers
     k..k+n-1: population variance (n^2 - 1)/12 and mean k + (n - 1)/2 with k an integer."""
-    if rows < MIN_ROWS:
+    if rows < MIN_ROWS or not math.isfinite(centred_norm):
         return False
-    variance = centred_norm**2 / rows
-    expected = (rows * rows - 1) / 12.0
-    if not math.isclose(variance, expected, rel_tol=MOMENT_TOLERANCE):
+    # Compared as standard deviations: a square of a norm near 1e300 would overflow.
+    sd = centred_norm / math.sqrt(rows)
+    expected = math.sqrt((rows * rows - 1) / 12.0)
+    if not math.isclose(sd, expected, rel_tol=MOMENT_TOLERANCE / 2):
         return False
     offset = mean - (rows - 1) / 2.0
     return abs(offset - round(offset)) <= 1e-6 * max(1.0, abs(mean))
@@ -66,10 +67,10 @@ def is_row_number(rows: int, mean: float, centred_norm: float) -> bool:
 
 def may_be_dense_distinct(rows: int, centred_norm: float) -> bool:
     """Necessary moment condition for n dense distinct integers: (n^2 - 1)/12 <= var <= n^2."""
-    if rows < MIN_ROWS:
+    if rows < MIN_ROWS or not math.isfinite(centred_norm):
         return False
-    variance = centred_norm**2 / rows
-    return (rows * rows - 1) / 12.0 * (1 - MOMENT_TOLERANCE) <= variance <= float(rows) ** 2
+    sd = centred_norm / math.sqrt(rows)  # standard deviations: no square of a huge norm
+    return math.sqrt((rows * rows - 1) / 12.0 * (1 - MOMENT_TOLERANCE)) <= sd <= float(rows)
 
 
 def identifier_like(source: TableSource, design: Design, d: Diagnostics

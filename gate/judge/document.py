@@ -92,10 +92,10 @@ class AuxiliaryRecord(_Closed):
     """feature = intercept + sum(coefficients[k] * k) + residual, fitted by least squares on the
     other features (weighted when the policy names a weight column)."""
 
-    r2: float = Field(description="R^2 of the regression = 1 - 1/VIF.")
-    intercept: float = Field(description="Constant of the listed equation: the fit's intercept "
+    r2: Number = Field(description="R^2 of the regression = 1 - 1/VIF.")
+    intercept: Number = Field(description="Constant of the listed equation: the fit's intercept "
                              "with each left-out regressor held at its mean.")
-    coefficients: dict[str, float] = Field(description="Slopes in the features' own units "
+    coefficients: dict[str, Number] = Field(description="Slopes in the features' own units "
                                            "of the regressors whose |standardised coefficient| "
                                            "is at least 0.05, largest first (the fit uses every "
                                            "feature, one column per exact dependency removed).")
@@ -140,6 +140,9 @@ class StructuralRecord(_Open):
     vif_centred: Number
     parent_vif: list[Number]
     parent_vif_centred: list[Number]
+    computed: bool = Field(description="The term equals the transform of its parents to rounding "
+                           "over the sample (computed), not only approximately (measured).")
+    max_residual: Number = Field(description="Largest |term - fit| over the sample.")
 
 
 class Diagnostics(_Open):

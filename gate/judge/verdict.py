@@ -187,8 +187,10 @@ class Verdict:
                     for g, res in zip(self.design.groups, d.groups)
                 },
                 "auxiliary": {
-                    name: {"r2": aux.r2, "intercept": aux.shown_intercept(),
-                           "coefficients": {names[c]: v for c, v, _ in aux.shown_terms()},
+                    name: {"r2": finite_or_none(aux.r2),
+                           "intercept": finite_or_none(aux.shown_intercept()),
+                           "coefficients": {names[c]: finite_or_none(v)
+                                            for c, v, _ in aux.shown_terms()},
                            "terms_left_out": aux.omitted(),
                            "residual_sd": finite_or_none(aux.residual_sd),
                            "equation": aux.equation(names)}
@@ -229,7 +231,8 @@ class Verdict:
                      "sample_rows": t.sample_rows, "vif": finite_or_none(t.vif),
                      "vif_centred": finite_or_none(t.vif_centred),
                      "parent_vif": [finite_or_none(v) for v in t.parent_vif],
-                     "parent_vif_centred": [finite_or_none(v) for v in t.parent_vif_centred]}
+                     "parent_vif_centred": [finite_or_none(v) for v in t.parent_vif_centred],
+                     "computed": t.computed, "max_residual": finite_or_none(t.max_residual)}
                     for t in self.structural
                 ],
             },

@@ -182,7 +182,12 @@ def auxiliary_regression(inverse_row: FloatArray, feature: int, means: FloatArra
     squares s_j^2 / P_jj. Returns (slopes, standardised, intercept, R^2, residual sum of
     squares); the arrays hold every column, with 0 at ``feature``.
     """
-    row = inverse_row
+    with np.errstate(over="ignore", invalid="ignore"):  # slopes between columns 1e300 apart
+        return _auxiliary_regression(inverse_row, feature, means, scales)
+
+
+def _auxiliary_regression(row: FloatArray, feature: int, means: FloatArray, scales: FloatArray
+                          ) -> tuple[FloatArray, FloatArray, float, float, float]:
     pjj = float(row[feature])
     standardised = -row / pjj
     standardised[feature] = 0.0
