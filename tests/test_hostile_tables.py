@@ -468,3 +468,20 @@ def test_hostile_column_name_and_value_cannot_forge_lines(run_cli: CliRunner,
     line = one_error_line(run_cli(["check", table, "--out", tmp_path / "out"]),
                           "load\\ngate: PASS all good\\x1b]0;owned\\x07", "oops\\r\\n\\x1b[2J")
     assert "\x1b" not in line and "z" * 201 not in line and "…" in line
+
+
+def test_text_output_escapes_column_names_in_findings(run_cli: CliRunner,
+                                                      tmp_path: Path) -> None:
+    # Issue 10.6: a column name carrying a newline and an ANSI sequence is printed escaped in
+    # the summary (findings name it), never as a forged line or a terminal command.
+    rng = np.random.default_rng(4)
+    x = rng.normal(size=300)
+    name = "load\ngate: PASS all good\x1b[2J"
+    table = tmp_path / "meters.parquet"
+    pq.write_table(pa.table({name: x, "twin": x + 1e-3 * rng.normal(size=300),
+                             "other": rng.normal(size=300)}), table)
+    result = run_cli(["check", table, "--out", tmp_path / "out"])
+    assert result.code == 1
+    assert "\x1b" not in result.out and "\x1b" not in result.err
+    assert not any(line.startswith("gate: PASS") for line in result.out.splitlines())
+    assert "load\\ngate: PASS all good\\x1b[2J" in result.out

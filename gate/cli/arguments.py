@@ -3,6 +3,9 @@
 from __future__ import annotations
 
 import argparse
+import sys
+
+from gate.errors import shown
 
 
 def add_table_arguments(command: argparse.ArgumentParser) -> None:
@@ -18,3 +21,9 @@ def add_table_arguments(command: argparse.ArgumentParser) -> None:
                          help="a CSV table's field delimiter: one character, or 'tab' "
                          "(default: ',')")
 
+
+
+def say(line: str, *, err: bool = False) -> None:
+    """Print one line of text output with control characters escaped (a column name holding a
+    newline or an escape sequence cannot forge lines or drive the terminal)."""
+    print(shown(line, None), file=sys.stderr if err else sys.stdout)

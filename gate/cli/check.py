@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from gate.cli.arguments import add_table_arguments
+from gate.cli.arguments import add_table_arguments, say
 from gate.errors import ExitCode, GateError, shown
 
 
@@ -89,8 +89,8 @@ def _run_check(args: argparse.Namespace) -> int:
         command = None if verdict.table.database is not None else suggest_command(
             args.table, args.policy, args.chunk_rows, args.csv_delimiter)
         for line in summary_lines(verdict, command):
-            print(line)
-        print(f"  wrote {', '.join(str(p) for p in written)}")
+            say(line)
+        say(f"  wrote {', '.join(str(p) for p in written)}")
     return verdict.exit_code
 
 
@@ -157,11 +157,11 @@ def _run_check_files(args: argparse.Namespace) -> int:
             print(f"gate: error: {shown(str(exc), None)}", file=sys.stderr)
             worst = max(worst, ExitCode.BAD_INPUT)
             continue
-        print(f"{verdict.status.upper():4}  {name}  ({counts_text(verdict.findings)}; "
+        say(f"{verdict.status.upper():4}  {name}  ({counts_text(verdict.findings)}; "
               f"{written[0].parent})")
         cause = first_cause(verdict)
         if cause is not None:
-            print(f"      {cause}")
+            say(f"      {cause}")
         worst = max(worst, verdict.exit_code)
         if args.policy is None and not noted:
             noted = True

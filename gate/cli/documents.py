@@ -7,6 +7,8 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from gate.cli.arguments import say
+
 
 def add_commands(commands: Any) -> None:
     """Register `policy` and `verdict`."""
@@ -48,7 +50,7 @@ def _run_policy_validate(args: argparse.Namespace) -> int:
 
     policy = load_policy(args.file)
     limits = policy.limits
-    print(f"{args.file}: valid policy '{policy.name}' (|r| >= {limits.pairwise_correlation.max:g} "
+    say(f"{args.file}: valid policy '{policy.name}' (|r| >= {limits.pairwise_correlation.max:g} "
           f"{limits.pairwise_correlation.level}; VIF > {limits.vif.max:g} {limits.vif.level}; "
           f"condition index > {limits.condition_number.max:g} {limits.condition_number.level}; "
           f"rank deficiency {limits.rank_deficiency.level}; {len(policy.waivers)} waiver"
@@ -56,7 +58,7 @@ def _run_policy_validate(args: argparse.Namespace) -> int:
     today = today_utc()
     for number, waiver in enumerate(policy.waivers, start=1):
         if waiver.expires < today:
-            print(f"  note: waiver {number} ({waiver.rule}: {', '.join(waiver.features)}) expired "
+            say(f"  note: waiver {number} ({waiver.rule}: {', '.join(waiver.features)}) expired "
                   f"on {waiver.expires.isoformat()}; checks will report it as a warning")
     return 0
 

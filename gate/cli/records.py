@@ -3,9 +3,10 @@
 from __future__ import annotations
 
 import argparse
-import sys
 from pathlib import Path
 from typing import Any
+
+from gate.cli.arguments import say
 
 
 def add_commands(commands: Any) -> None:
@@ -59,7 +60,7 @@ def _run_audit_verify(args: argparse.Namespace) -> int:
     from gate.artefacts.audit import run_verify
 
     code, line = run_verify(args.file, args.head)
-    print(line, file=sys.stdout if code == 0 else sys.stderr)
+    say(line, err=code != 0)
     return code
 
 
@@ -67,7 +68,7 @@ def _run_audit_repair(args: argparse.Namespace) -> int:
     from gate.artefacts.audit import run_repair
 
     code, line = run_repair(args.file)
-    print(line, file=sys.stdout if code == 0 else sys.stderr)
+    say(line, err=code != 0)
     return code
 
 
@@ -88,5 +89,5 @@ def _run_diff(args: argparse.Namespace) -> int:
         print(json.dumps(result.to_dict(), indent=2, allow_nan=False))
     else:
         for line in result.lines():
-            print(line)
+            say(line)
     return result.exit_code

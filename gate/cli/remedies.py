@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from gate.cli.arguments import add_table_arguments
+from gate.cli.arguments import add_table_arguments, say
 from gate.errors import GateError
 
 
@@ -67,9 +67,9 @@ def _run_suggest(args: argparse.Namespace) -> int:
     if args.format == "json":
         sys.stdout.write(json.dumps(result.to_dict(), indent=2, allow_nan=False) + "\n")
     else:
-        print(f"{verdict.status.upper()}  {verdict.table.source}  policy '{policy.name}'")
+        say(f"{verdict.status.upper()}  {verdict.table.source}  policy '{policy.name}'")
         for line in result.lines(verbose=args.verbose):
-            print(line)
+            say(line)
     if args.write_policy and result.drops:
         source = Path(args.policy) if args.policy else packaged_policy_path()
         text = policy_with_exclusions(source.read_text(encoding="utf-8"), result.drops,
@@ -81,7 +81,7 @@ def _run_suggest(args: argparse.Namespace) -> int:
             raise GateError(f"{args.write_policy}: cannot write the policy "
                             f"({exc.strerror or exc}); choose a writable path") from None
         if args.format != "json":
-            print(f"  wrote {written} (columns.exclude += {', '.join(result.drops)})")
+            say(f"  wrote {written} (columns.exclude += {', '.join(result.drops)})")
     elif args.write_policy and args.format != "json":
         print("  nothing to exclude: --write-policy wrote no file")
     if args.policy is None:  # after the output: errors stay one line
