@@ -34,6 +34,7 @@ from gate.api import check
 from gate.artefacts.audit import verify_chain
 from gate.artefacts.files import STAGE_MARK, swap_folder
 from gate.artefacts.outputs import MANIFEST, plan_outputs, verify_set, write_check_outputs
+from gate.artefacts.verdict_json import verdict_json
 from gate.judge.verdict import Verdict
 
 CliRunner = Callable[[list[Any]], Any]
@@ -379,3 +380,19 @@ def test_plan_outputs_accepts_a_folder_gate_wrote(verdict: Verdict, tmp_path: Pa
     write_check_outputs(verdict, out, junit=out / "gate.xml", full_matrices=True)
     plan = plan_outputs(out)  # a later run without --junit may still replace the folder
     assert plan.folder == out and plan.junit is None
+
+
+def test_an_audit_log_link_planted_after_the_check_is_refused(tmp_path: Path) -> None:
+    # The early output check refuses links; the append itself refuses one planted later
+    # (O_NOFOLLOW), so a write made as root cannot be redirected.
+    from gate.artefacts.audit import append_entry
+    from gate.errors import OutputError
+
+    target = tmp_path / "elsewhere.txt"
+    target.write_text("keep me\n")
+    log = tmp_path / "audit.jsonl"
+    log.symlink_to(target)
+    verdict = check(pd.DataFrame({"a": [1.0, 2.0, 4.0, 3.0], "b": [2.0, 1.0, 3.0, 5.0]}))
+    with pytest.raises(OutputError, match="links are refused"):
+        append_entry(log, verdict_json(verdict).encode())
+    assert target.read_text() == "keep me\n"

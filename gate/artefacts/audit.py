@@ -51,7 +51,9 @@ import hashlib
 import json
 import os
 import re
+import stat
 from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -221,16 +223,43 @@ def keep_verdict(file: Path, document: bytes, verdict: dict[str, Any],
     return field
 
 
-def _append(file: Path, fields: dict[str, Any]) -> dict[str, Any]:
+@contextmanager
+def _locked_log(file: Path, flags: int, action: str) -> Iterator[int]:
+    """The audit log opened for ``action`` under its exclusive lock (released when the file
+    closes, also if we crash). A link or anything but a regular file is refused, even one
+    planted after the early output check (O_NOFOLLOW, then fstat); an OSError becomes one
+    OutputError line naming the log."""
     try:
-        if file.parent != Path():
-            file.parent.mkdir(parents=True, exist_ok=True)
-        fd = os.open(file, os.O_RDWR | os.O_CREAT | os.O_APPEND, 0o644)
+        fd = os.open(file, flags | os.O_NOFOLLOW, 0o644)
+    except FileNotFoundError:
+        raise OutputError(f"{file}: audit log not found; check the path") from None
     except OSError as exc:
         raise OutputError(f"{file}: cannot open the audit log ({exc.strerror or exc}); "
-                          "choose a writable --audit-log path") from None
+                          "choose a regular, writable --audit-log file (links are refused)"
+                          ) from None
     try:
-        fcntl.flock(fd, fcntl.LOCK_EX)  # released when fd closes, also if we crash
+        if not stat.S_ISREG(os.fstat(fd).st_mode):
+            raise OutputError(f"{file}: the audit log is not a regular file; give another path")
+        fcntl.flock(fd, fcntl.LOCK_EX)
+        yield fd
+    except OSError as exc:
+        if isinstance(exc, OutputError):
+            raise
+        raise OutputError(f"{file}: cannot {action} the audit log ({exc.strerror or exc})"
+                          ) from None
+    finally:
+        os.close(fd)
+
+
+def _append(file: Path, fields: dict[str, Any]) -> dict[str, Any]:
+    if file.parent != Path():
+        try:
+            file.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise OutputError(f"{file}: cannot create the audit log's folder "
+                              f"({exc.strerror or exc}); choose a writable --audit-log path"
+                              ) from None
+    with _locked_log(file, os.O_RDWR | os.O_CREAT | os.O_APPEND, "append to") as fd:
         size = os.fstat(fd).st_size
         last = _last_line(fd, file, size)
         if last is None:
@@ -261,13 +290,6 @@ def _append(file: Path, fields: dict[str, Any]) -> dict[str, Any]:
                               "; the log was cut back to its previous end; free disk space "
                               "and run again") from None
         return entry
-    except OSError as exc:
-        if isinstance(exc, OutputError):
-            raise
-        raise OutputError(f"{file}: cannot append to the audit log ({exc.strerror or exc})"
-                          ) from None
-    finally:
-        os.close(fd)
 
 
 def _last_line(fd: int, file: Path, size: int) -> bytes | None:
@@ -552,15 +574,7 @@ def repair_log(path: str | Path, *, now: dt.datetime | None = None) -> RepairRep
     """
     file = Path(path)
     name = str(file)
-    try:
-        fd = os.open(file, os.O_RDWR)
-    except FileNotFoundError:
-        raise OutputError(f"{file}: audit log not found; check the path") from None
-    except OSError as exc:
-        raise OutputError(f"{file}: cannot open the audit log ({exc.strerror or exc})"
-                          ) from None
-    try:
-        fcntl.flock(fd, fcntl.LOCK_EX)
+    with _locked_log(file, os.O_RDWR, "repair") as fd:
         size = os.fstat(fd).st_size
         end = size
         tail = b""
@@ -591,13 +605,6 @@ def repair_log(path: str | Path, *, now: dt.datetime | None = None) -> RepairRep
         os.ftruncate(fd, end)
         os.fsync(fd)
         return RepairReport(name, "cut", len(tail), str(side))
-    except OSError as exc:
-        if isinstance(exc, OutputError):
-            raise
-        raise OutputError(f"{file}: cannot repair the audit log ({exc.strerror or exc})"
-                          ) from None
-    finally:
-        os.close(fd)
 
 
 def run_verify(path: str | Path, head: str | None) -> tuple[int, str]:
