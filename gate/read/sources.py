@@ -205,9 +205,12 @@ class ParquetSource:
         import pyarrow.parquet as pq
 
         self.name = str(path) if name is None else name
+        # Opened here by the path as given (a relative path works even where a parent folder
+        # of the working directory cannot be searched); ``path`` and ``files`` are absolute,
+        # for the Dask workers.
         self.path = path.absolute()
-        self._root = self.path if self.path.is_dir() else None
-        files = _parquet_files(self.path) if self._root else [self.path]
+        self._root = path if path.is_dir() else None
+        files = _parquet_files(path) if self._root else [path]
         if not files:
             raise TableError(f"{self.name}: folder holds no .parquet files; point TABLE at a "
                              "file or a folder of Parquet files")
@@ -235,13 +238,14 @@ class ParquetSource:
     @property
     def files(self) -> list[Path]:
         """The Parquet files, by absolute path, in reading order."""
-        return list(self._paths)
+        return [f.absolute() for f in self._paths]
 
     def display_path(self, file: Path) -> str:
         """A file of this table (absolute path) as messages show it."""
         if self._root is None:
             return self.name
-        return str(Path(self.name) / file.relative_to(self._root))
+        root = self._root.absolute() if file.is_absolute() else self._root
+        return str(Path(self.name) / file.relative_to(root))
 
     @property
     def columns(self) -> tuple[Column, ...]:
@@ -294,7 +298,7 @@ class _SingleFileSource:
     @property
     def path(self) -> Path:
         """The file by absolute path (messages show ``name``)."""
-        return self._path
+        return self._path.absolute()
 
     @property
     def columns(self) -> tuple[Column, ...]:
@@ -382,7 +386,7 @@ class CsvSource(_SingleFileSource):
         import pyarrow.csv as pacsv
 
         self.name = str(path) if name is None else name
-        self._path = path.absolute()
+        self._path = path  # opened as given; ``path`` (absolute) is what Dask workers open
         self._csv = pacsv
         self._delimiter = delimiter
         self._check_encoding()
@@ -534,7 +538,7 @@ class ArrowSource(_SingleFileSource):
 
     def __init__(self, path: Path, name: str | None = None) -> None:
         self.name = str(path) if name is None else name
-        self._path = path.absolute()
+        self._path = path  # opened as given; ``path`` (absolute) is what Dask workers open
         try:
             with pa.memory_map(str(self._path)) as source:
                 self._schema = self._reader(source).schema
