@@ -32,6 +32,9 @@ def add_commands(commands: Any) -> None:
     check.add_argument("--scheduler", metavar="ADDRESS",
                        help="with --engine dask: scheduler address (default: a local cluster "
                        "of 2 workers)")
+    check.add_argument("--no-html", action="store_true",
+                       help="skip summary.html (faster: for commit hooks; verdict.json, JUnit "
+                       "and the audit log are unchanged)")
     check.add_argument("--full-matrices", action="store_true",
                        help="also write matrices.npz (correlation, inverse correlation, VIF, "
                        "condition indices, proportions, feature names) beside the verdict")
@@ -47,6 +50,8 @@ def add_commands(commands: Any) -> None:
     files.add_argument("--out", metavar="DIR", default="gate-out",
                        help="folder for one sub-folder of artefacts per table (default: gate-out)")
     files.add_argument("--label", metavar="TEXT", help="free text carried into each verdict")
+    files.add_argument("--no-html", action="store_true",
+                       help="skip each summary.html (faster: for commit hooks)")
     files.set_defaults(handler=_run_check_files)
 
 
@@ -58,11 +63,13 @@ def _run_check(args: argparse.Namespace) -> int:
 
     if args.scheduler and args.engine != "dask":
         raise GateError("--scheduler needs --engine dask; add --engine dask")
-    _preload_html_writer()
+    if not args.no_html:
+        _preload_html_writer()
     verdict = check(args.table, args.policy, label=args.label, chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
                     progress=None if args.quiet else terminal_progress)
-    written = write_check_outputs(verdict, Path(args.out), junit=getattr(args, "junit", None),
+    written = write_check_outputs(verdict, Path(args.out), html=not args.no_html,
+                                  junit=getattr(args, "junit", None),
                                   audit_log=getattr(args, "audit_log", None),
                                   full_matrices=args.full_matrices)
     if getattr(args, "format", "text") == "json":
@@ -117,7 +124,8 @@ def _run_check_files(args: argparse.Namespace) -> int:
         used.add(folder)
         try:
             verdict = check(name, policy, label=args.label)
-            written = write_check_outputs(verdict, Path(args.out) / folder)
+            written = write_check_outputs(verdict, Path(args.out) / folder,
+                                          html=not args.no_html)
         except GateError as exc:  # this file is unusable; report it and check the others
             print(f"gate: error: {exc}", file=sys.stderr)
             worst = max(worst, ExitCode.BAD_INPUT)
