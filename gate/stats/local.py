@@ -12,6 +12,7 @@ from contextlib import contextmanager
 from types import TracebackType
 from typing import Protocol, Self
 
+import numpy as np
 import pyarrow as pa
 
 from gate.design.plan import (
@@ -24,6 +25,7 @@ from gate.design.plan import (
     encode_block,
     encode_rows,
 )
+from gate.numerics.kernels import FloatArray
 from gate.read.sources import TableSource
 from gate.stats.accumulators import CentredGram, TriangularFactor
 from gate.stats.routing import ExactPassPlan, exact_pass_block
@@ -89,26 +91,31 @@ def main_pass(source: TableSource, plan: DesignPlan, *, chunk_rows: int | None =
     gram = CentredGram.empty(len(plan.layout))
     counts = RowCounts()
     for _, block in encoded_chunks(source, plan, plan.read_columns, chunk_rows=chunk_rows,
-                                   progress=progress):
+                                   progress=progress, reuse=True):
         gram = gram.merge(CentredGram.from_block(block.values, block.weights, overwrite=True))
         counts = counts.add(block.counts)
     return gram, counts
 
 
 def encoded_chunks(source: TableSource, plan: DesignPlan, columns: Sequence[str], *,
-                   chunk_rows: int | None, progress: ProgressFactory | None
-                   ) -> Iterator[tuple[pa.Table, EncodedBlock]]:
+                   chunk_rows: int | None, progress: ProgressFactory | None,
+                   reuse: bool = False) -> Iterator[tuple[pa.Table, EncodedBlock]]:
     """The one main pass over the rows: each chunk (``columns``) with its encoding.
 
     Every main pass (whole table, or split by a segment key) reads through here, so row numbers
     in messages, the whole-table count of infinite values and the progress line are the same.
+    ``reuse=True`` encodes every chunk into one buffer, so a block is valid only until the
+    next one is drawn (the caller folds it in at once): no allocation and no first touch of
+    fresh pages per chunk.
     """
     read = 0
+    buffer = _ReusedBuffer(len(plan.layout)) if reuse else None
     with _counting(progress, "reading rows", source.row_count) as advance:
         chunks = iter(source.chunks(columns, plan.chunk_rows(chunk_rows)))
         for chunk in chunks:
             try:
-                block = encode_rows(plan, chunk, first_row=read)
+                block = encode_rows(plan, chunk, first_row=read,
+                                    out=None if buffer is None else buffer.rows(chunk.num_rows))
             except InfiniteValuesError as exc:
                 # Read on (this column only) so the message gives the whole table's count.
                 total = exc.count + sum(count_infinite(rest, exc.column) for rest in chunks)
@@ -132,6 +139,19 @@ def exact_pass(source: TableSource, plan: DesignPlan, selection: tuple[int, ...]
             factor = factor.merge(TriangularFactor.from_block(block))
             advance(chunk_counts.read)
     return factor
+
+
+class _ReusedBuffer:
+    """One column-major (rows x width) float buffer, grown only when a chunk is larger."""
+
+    def __init__(self, width: int) -> None:
+        self._width = width
+        self._array: FloatArray = np.empty((width, 0)).T
+
+    def rows(self, n: int) -> FloatArray:
+        if n > self._array.shape[0]:
+            self._array = np.empty((self._width, n)).T
+        return self._array
 
 
 @contextmanager
