@@ -12,19 +12,37 @@ never becomes a spurious constant column.
 from __future__ import annotations
 
 import fnmatch
+import importlib
 import math
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 from numpy.typing import NDArray
 
 from gate.errors import DesignError, TableError
 from gate.numerics.kernels import FloatArray
 from gate.policy.models import Policy
 from gate.read.sources import DEFAULT_CHUNK_ROWS, TableSource
+
+
+class _OnFirstUse:
+    """A module imported on first attribute access. pyarrow.compute costs about a tenth of a
+    second to import and a table of float64 columns never needs it (issue 12)."""
+
+    def __init__(self, name: str) -> None:
+        self._name = name
+
+    def __getattr__(self, attribute: str) -> Any:
+        return getattr(importlib.import_module(self._name), attribute)
+
+
+if TYPE_CHECKING:
+    import pyarrow.compute as pc
+else:
+    pc = _OnFirstUse("pyarrow.compute")
 
 #: One-hot encoding a column with more levels than this is almost always a mistake (an id).
 MAX_LEVELS = 500
