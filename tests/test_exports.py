@@ -11,11 +11,16 @@ INIT = Path(gate.__file__)
 
 
 def public_names_defined_in_init() -> set[str]:
-    """Names bound at top level of gate/__init__.py (imports, defs, assignments), minus _private
-    names and the dunders."""
+    """Names bound at top level of gate/__init__.py (imports, defs, assignments, and the
+    imports under ``if TYPE_CHECKING:`` that the module ``__getattr__`` loads lazily), minus
+    _private names and the dunders."""
     tree = ast.parse(INIT.read_text(encoding="utf-8"))
     names: set[str] = set()
+    body = list(tree.body)
     for node in tree.body:
+        if isinstance(node, ast.If) and ast.unparse(node.test).endswith("TYPE_CHECKING"):
+            body.extend(node.body)
+    for node in body:
         if isinstance(node, (ast.Import, ast.ImportFrom)):
             names.update((a.asname or a.name).split(".")[0] for a in node.names)
         elif isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)):
@@ -39,6 +44,16 @@ def test_every_public_name_is_exported() -> None:
 def test_every_export_resolves() -> None:
     for name in gate.__all__:
         assert getattr(gate, name) is not None
+
+
+def test_lazy_exports_are_the_defining_modules_objects() -> None:
+    from gate.api import check
+    from gate.judge.verdict import Verdict
+    from gate.policy.models import load_policy
+
+    assert gate.check is check and gate.Verdict is Verdict and gate.load_policy is load_policy
+    assert set(gate._LAZY) <= set(gate.__all__)
+    assert set(dir(gate)) >= set(gate.__all__)
 
 
 def test_the_documented_api_is_there() -> None:

@@ -41,6 +41,9 @@ def add_commands(commands: Any) -> None:
     check.add_argument("--scheduler", metavar="ADDRESS",
                        help="with --engine dask: scheduler address (default: a local cluster "
                        "of 2 workers)")
+    check.add_argument("--no-html", action="store_true",
+                       help="skip summary.html (faster: for commit hooks; verdict.json, JUnit "
+                       "and the audit log are unchanged)")
     check.add_argument("--full-matrices", action="store_true",
                        help="also write matrices.npz (correlation, inverse correlation, VIF, "
                        "condition indices, proportions, feature names) beside the verdict")
@@ -56,6 +59,8 @@ def add_commands(commands: Any) -> None:
     files.add_argument("--out", metavar="DIR", default="gate-out",
                        help="folder for one sub-folder of artefacts per table (default: gate-out)")
     files.add_argument("--label", metavar="TEXT", help="free text carried into each verdict")
+    files.add_argument("--no-html", action="store_true",
+                       help="skip each summary.html (faster: for commit hooks)")
     files.set_defaults(handler=_run_check_files)
 
 
@@ -67,10 +72,12 @@ def _run_check(args: argparse.Namespace) -> int:
 
     if args.scheduler and args.engine != "dask":
         raise GateError("--scheduler needs --engine dask; add --engine dask")
-    outputs = {"junit": getattr(args, "junit", None), "full_matrices": args.full_matrices,
+    outputs = {"html": not args.no_html, "junit": getattr(args, "junit", None),
+               "full_matrices": args.full_matrices,
                "audit_log": getattr(args, "audit_log", None), "inputs": (args.table, args.policy)}
     plan_outputs(Path(args.out), **outputs)  # every output path checked before the long pass
-    _preload_html_writer()
+    if not args.no_html:
+        _preload_html_writer()
     verdict = check(_table_or_database(args), args.policy, label=args.label,
                     chunk_rows=args.chunk_rows,
                     engine=args.engine, scheduler=args.scheduler,
@@ -149,10 +156,11 @@ def _run_check_files(args: argparse.Namespace) -> int:
             folder = folder.removesuffix(".gate") + "_.gate"
         used.add(folder)
         try:
-            plan_outputs(Path(args.out) / folder, inputs=(name, args.policy))
+            plan_outputs(Path(args.out) / folder, inputs=(name, args.policy),
+                         html=not args.no_html)
             verdict = check(name, policy, label=args.label)
             written = write_check_outputs(verdict, Path(args.out) / folder,
-                                          inputs=(name, args.policy))
+                                          inputs=(name, args.policy), html=not args.no_html)
         except GateError as exc:  # this file is unusable; report it and check the others
             print(f"gate: error: {shown(str(exc), None)}", file=sys.stderr)
             worst = max(worst, ExitCode.BAD_INPUT)

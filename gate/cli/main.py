@@ -55,13 +55,34 @@ def _quiet_broken_pipe() -> int:
     return EXIT_BROKEN_PIPE
 
 
+class _VersionAction(argparse.Action):
+    """``--version``: the installed distribution's version, looked up only when asked (the
+    command groups below import nothing heavy, so --version and --help load neither numpy nor
+    pandas; tests/test_startup.py)."""
+
+    def __init__(self, option_strings: Sequence[str], dest: str = argparse.SUPPRESS,
+                 default: str = argparse.SUPPRESS, help: str | None = None) -> None:
+        super().__init__(option_strings, dest, nargs=0, default=default, help=help)
+
+    def __call__(self, parser: argparse.ArgumentParser, namespace: argparse.Namespace,
+                 values: object, option_string: str | None = None) -> None:
+        from importlib.metadata import PackageNotFoundError, version
+
+        try:
+            number = version("collinearity-gate")
+        except PackageNotFoundError:
+            number = "0+unknown"  # the same fallback as the verdict's tool_version
+        sys.stdout.write(f"{parser.prog} {number}\n")  # stdout, as argparse's own "version"
+        parser.exit()
+
+
 def build_parser() -> argparse.ArgumentParser:
     from gate.cli import check, demo, documents, records, remedies
-    from gate.judge.verdict import tool_version
 
     parser = argparse.ArgumentParser(
         prog="gate", description="Check a feature table for multicollinearity against a policy.")
-    parser.add_argument("--version", action="version", version=f"%(prog)s {tool_version()}")
+    parser.add_argument("--version", action=_VersionAction,
+                        help="show the installed version and exit")
     commands = parser.add_subparsers(title="commands", metavar="COMMAND")
     for group in (check, demo, documents, records, remedies):
         group.add_commands(commands)

@@ -25,13 +25,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 from numpy.typing import NDArray
 
 from gate.errors import DesignError, TableError, shown
 from gate.numerics.kernels import FloatArray
 from gate.policy.models import DEFAULT_MAX_LEVELS, MAX_LEVELS_CEILING, Policy
-from gate.read.sources import DEFAULT_CHUNK_ROWS, TableSource
+from gate.read.sources import DEFAULT_CHUNK_ROWS, TableSource, pc
 
 #: Default level limit (``columns.max_levels``): one-hot encoding a text column with more levels
 #: is almost always a mistake (an identifier); common practice, no source.
@@ -325,13 +324,15 @@ def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
     return block.values, block.weights, block.counts
 
 
-def encode_rows(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0) -> EncodedBlock:
+def encode_rows(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0,
+                out: FloatArray | None = None) -> EncodedBlock:
     """One chunk -> :class:`EncodedBlock` (``first_row``: its first row's number in the table,
-    for messages)."""
+    for messages). ``out``: a column-major buffer of at least (rows, width) to write into,
+    reused across chunks by the caller (the block's values are then a view of it)."""
     n = chunk.num_rows
     width = len(plan.layout)
     # Column-major: each feature is written contiguously and X'X on it is one BLAS call.
-    values = np.empty((width, n)).T
+    values = np.empty((width, n)).T if out is None else out[:n, :width]
     missing_rows = np.zeros(n, dtype=bool)
     masks: dict[str, NDArray[np.bool_]] = {}
     position = 0

@@ -14,25 +14,48 @@ here.
 from __future__ import annotations
 
 import hashlib
+import importlib
 import os
 import stat
 from collections.abc import Collection, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Literal, Protocol
+from typing import TYPE_CHECKING, Any, Literal, Protocol
 
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from gate.errors import TableError, shown
+
+
+class _OnFirstUse:
+    """A module imported on first attribute access. pyarrow.compute costs about a tenth of a
+    second to import and a table of float64 columns never needs it (issue 12); every stage imports it from here."""
+
+    def __init__(self, name: str) -> None:
+        self._name = name
+
+    def __getattr__(self, attribute: str) -> Any:
+        return getattr(importlib.import_module(self._name), attribute)
+
+
+if TYPE_CHECKING:
+    import pyarrow.compute as _compute
+
+    pc = _compute
+else:
+    pc = _OnFirstUse("pyarrow.compute")
+
 
 ColumnKind = Literal["numeric", "boolean", "categorical", "datetime", "other"]
 DEFAULT_CHUNK_ROWS = 65_536
 #: Read-buffer per column chunk when streaming Parquet (see the module docstring).
 PARQUET_BUFFER_BYTES = 1 << 18
 #: A row group up to this size (uncompressed, selected columns) is read whole, with pyarrow's
-#: threads; a larger one is streamed in batches.
-WHOLE_ROW_GROUP_BYTES = 128 << 20
+#: threads; a larger one is streamed in batches. 256 MiB: reading whole decodes the columns in
+#: parallel, and a 200,000 x 100 row group (160 MB) read whole took 4.8 s against 11.1 s
+#: streamed in 65,536-row batches (machine heavily loaded; same process, alternating). Row
+#: groups of 1Mi rows x 50 (420 MB; the 600 MB peak target) are still streamed.
+WHOLE_ROW_GROUP_BYTES = 256 << 20
 #: Streaming holds about one read buffer and one decoded page per column, so a wide row group
 #: up to this much per column is cheaper read whole. Measured on 20,000 x 2,000 (one 395 MB row
 #: group): streamed in 4,194-row batches 1.7 GB peak and 2.1 s; read whole 0.6 GB and 0.34 s.

@@ -14,12 +14,11 @@ from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from gate.design.plan import DesignPlan, RowCounts
 from gate.errors import TableError
 from gate.policy.models import Policy, escape_glob
-from gate.read.sources import DEFAULT_CHUNK_ROWS, Column, TableSource
+from gate.read.sources import DEFAULT_CHUNK_ROWS, Column, TableSource, pc
 from gate.stats.accumulators import CentredGram
 from gate.stats.local import ProgressFactory, encoded_chunks
 

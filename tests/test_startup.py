@@ -1,0 +1,74 @@
+"""Start-up cost (issue 12): `gate --version`, `gate --help` and `import gate` load no numeric
+stack, and `gate check --no-html` loads neither pandas nor great-tables.
+
+These assert WHICH modules a fresh interpreter imports (read from ``python -X importtime``,
+which lists every module as it is first imported), never timings: timings belong to
+``python -m gate.bench``, modules are what make the difference and do not depend on the load of
+the machine.
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+HEAVY = ("numpy", "pandas", "pyarrow", "scipy", "pydantic", "great_tables", "yaml")
+
+
+def imported_modules(*args: str, cwd: Path | None = None) -> tuple[set[str], str]:
+    """Top-level packages and full module names a fresh ``python -X importtime ARGS`` imports,
+    and its stdout."""
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    result = subprocess.run([sys.executable, "-X", "importtime", *args], capture_output=True,
+                            text=True, timeout=120, check=False, env=env, cwd=cwd)
+    assert result.returncode in (0, 1), result.stderr[-3000:]
+    modules = set()
+    for line in result.stderr.splitlines():
+        if line.startswith("import time:") and line.count("|") == 2:
+            name = line.rsplit("|", 1)[1].strip()
+            if name != "imported package":
+                modules.update((name, name.split(".")[0]))
+    assert "gate" in modules  # the probe really saw the imports
+    return modules, result.stdout
+
+
+@pytest.mark.parametrize("flag", ["--version", "--help"])
+def test_version_and_help_import_no_numeric_stack(flag: str) -> None:
+    modules, out = imported_modules("-m", "gate", flag)
+    assert out.startswith("gate ") if flag == "--version" else "check-files" in out
+    assert not modules & set(HEAVY), sorted(modules & set(HEAVY))
+
+
+def test_subcommand_help_imports_no_numeric_stack() -> None:
+    modules, out = imported_modules("-m", "gate", "check", "--help")
+    assert "--no-html" in out
+    assert not modules & set(HEAVY), sorted(modules & set(HEAVY))
+
+
+def test_import_gate_is_lazy_and_the_public_names_still_load() -> None:
+    modules, _ = imported_modules("-c", "import gate; assert 'check' in gate.__all__")
+    assert not modules & set(HEAVY), sorted(modules & set(HEAVY))
+    modules, _ = imported_modules("-c", "from gate import check, Verdict; print(check)")
+    assert {"numpy", "pyarrow"} <= modules  # the lazy names did load the pipeline
+
+
+def test_check_without_html_imports_neither_pandas_nor_great_tables(tmp_path: Path) -> None:
+    rng = np.random.default_rng(20_260_512)  # invented fleet-maintenance readings
+    values = rng.standard_normal((300, 4))
+    pq.write_table(pa.table({f"gauge_{j}": values[:, j] for j in range(4)}),
+                   tmp_path / "fleet.parquet")
+    modules, _ = imported_modules("-m", "gate", "check", "fleet.parquet", "--out", "o",
+                                  "--quiet", "--no-html", cwd=tmp_path)
+    assert {"numpy", "pyarrow"} <= modules
+    assert not modules & {"pandas", "great_tables"}, sorted(modules & {"pandas", "great_tables"})
+    assert "pyarrow.compute" not in modules  # float64 columns need no casting or encoding
+    assert (tmp_path / "o" / "verdict.json").is_file()
+    assert not (tmp_path / "o" / "summary.html").exists()
