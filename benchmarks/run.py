@@ -214,6 +214,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--skip", metavar="NAME", action="append", default=[],
                         choices=NAMES,
                         help="leave out one measurement (repeatable)")
+    parser.add_argument("--sql", metavar="ROWS", type=int,
+                        help="also the database routes (benchmarks/sql.py) on ROWS x 100: "
+                        "DuckDB always, PostgreSQL when its server binaries are present; "
+                        "streamed, push-down and exported to Parquet first (optional section)")
     args = parser.parse_args(argv)
     sizes = QUICK if args.quick else FULL
     repeat = args.repeat or (1 if args.quick else 2)
@@ -261,8 +265,18 @@ def main(argv: Sequence[str] | None = None) -> int:
             _progress("gate history")
             runs = 500 if args.quick else 10_000
             results["history"] = bench_history(folder / f"history_{runs}", runs, 100, repeat)
+        if args.sql:  # (7) optional: DuckDB / PostgreSQL, three routes each
+            _progress(f"database routes, {args.sql:,} x 100")
+            done = subprocess.run([sys.executable, str(Path(__file__).with_name("sql.py")),
+                                   "--rows", str(args.sql), "--cols", "100"],
+                                  capture_output=True, text=True, check=False)
+            results["sql"] = {"returncode": done.returncode,
+                              "output": (done.stdout + done.stderr).splitlines()}
     report["load_average_end"] = list(os.getloadavg())
     _print_table(report)
+    if "sql" in report["results"]:
+        print("(7) database routes (benchmarks/sql.py):")
+        print("\n".join(f"    {line}" for line in report["results"]["sql"]["output"]))
     if args.json:
         args.json.write_text(json.dumps(report, indent=2) + "\n")
         print(f"wrote {args.json}")
