@@ -2,7 +2,8 @@
 
 References: the streaming route is checked against the file route (Parquet; itself checked
 against statsmodels in test_references.py) to 1e-12; push-down against streaming to 1e-9
-relative (the issue's bar: database sums are uncompensated, see DEVELOPERS.md ("Database sources")); one VIF check
+relative (the issue's bar: database sums are uncompensated, see DEVELOPERS.md "Database
+sources"); one VIF check
 against statsmodels' variance_inflation_factor directly.
 """
 

@@ -41,7 +41,8 @@ SOURCE_ALIAS = '"gate_source"'
 #: Expressions per SELECT list the gate sends. PostgreSQL refuses more than 1,664 target
 #: entries; DuckDB has no such limit, but very long SELECT lists only slow its planner.
 SELECT_LIMIT: dict[Backend, int] = {"duckdb": 1500, "postgresql": 1500}
-#: The default route per backend (see README "Tables in databases" and DEVELOPERS.md ("Database sources")).
+#: The default route per backend (README "Tables in databases"; DEVELOPERS.md "Database
+#: sources").
 PUSH_DOWN_DEFAULT: dict[Backend, bool] = {"duckdb": False, "postgresql": False}
 #: PostgreSQL types read as numbers although the driver hands them over as text.
 PG_CAST_NUMERIC = {"numeric", "money"}

@@ -15,9 +15,10 @@ after the main pass is shared. Queries, each a scan of the user's query:
    ``C = S_zz - S_z S_z' / W`` and ``mean = s + S_z / W`` (the corrected two-pass algorithm; for
    a segment, whose mean differs from ``s``, the same correction is the shifted-data formula).
 
-Database sums are not compensated and their order is the engine's; DEVELOPERS.md ("Database sources") gives the
-accuracy measured against the streaming route. The exact TSQR pass, when the Gram cannot
-settle the rank, streams the rows (:class:`PushDownEngine.exact_pass`) and the verdict says so.
+Database sums are not compensated and their order is the engine's; DEVELOPERS.md ("Database
+sources") gives the accuracy measured against the streaming route. The exact TSQR pass, when the
+Gram cannot settle the rank, streams the rows (:class:`PushDownEngine.exact_pass`) and the
+verdict says so.
 """
 
 from __future__ import annotations
