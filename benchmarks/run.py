@@ -48,38 +48,37 @@ SEED = 20_260_501
 #: group by row group, copies the columns into one reused column-major buffer, and folds each
 #: group's centred X'X into a running total with the pairwise update of Chan, Golub & LeVeque
 #: (1979) -- the least work any tool computing a centred X'X from this file can do.
-FLOOR_SCRIPT = '''\
-import sys
-import numpy as np
-import pyarrow.parquet as pq
-
-file = pq.ParquetFile(sys.argv[1], pre_buffer=False, buffer_size=1 << 18)
-meta = file.metadata
-p = meta.num_columns
-largest = max(meta.row_group(g).num_rows for g in range(meta.num_row_groups))
-buffer = np.empty((p, largest)).T  # column-major: contiguous column copies, one BLAS call
-total, mean, gram = 0, np.zeros(p), np.zeros((p, p))
-for group in range(meta.num_row_groups):
-    table = file.read_row_group(group, use_threads=True)
-    n = table.num_rows
-    x = buffer[:n]
-    for j, column in enumerate(table.columns):
-        start = 0
-        for chunk in column.chunks:  # float64, no nulls: the values buffer as it is
-            k = len(chunk)
-            x[start:start + k, j] = np.frombuffer(chunk.buffers()[1], dtype=np.float64,
-                                                  count=chunk.offset + k)[chunk.offset:]
-            start += k
-    del table
-    m = x.mean(axis=0)
-    x -= m
-    g = x.T @ x
-    delta = m - mean
-    gram += g + np.outer(delta, delta) * (total * n / (total + n))
-    mean += delta * (n / (total + n))
-    total += n
-print(gram.shape[0], float(gram[0, 0]))
+STREAMED_GRAM = '''\
+def streamed_gram(path):
+    file = pq.ParquetFile(path, pre_buffer=False, buffer_size=1 << 18)
+    meta = file.metadata
+    p = meta.num_columns
+    largest = max(meta.row_group(g).num_rows for g in range(meta.num_row_groups))
+    buffer = np.empty((p, largest)).T  # column-major: contiguous column copies, one BLAS call
+    total, mean, gram = 0, np.zeros(p), np.zeros((p, p))
+    for group in range(meta.num_row_groups):
+        table = file.read_row_group(group, use_threads=True)
+        n = table.num_rows
+        x = buffer[:n]
+        for j, column in enumerate(table.columns):
+            start = 0
+            for chunk in column.chunks:  # float64, no nulls: the values buffer as it is
+                k = len(chunk)
+                x[start:start + k, j] = np.frombuffer(chunk.buffers()[1], dtype=np.float64,
+                                                      count=chunk.offset + k)[chunk.offset:]
+                start += k
+        del table
+        m = x.mean(axis=0)
+        x -= m
+        delta = m - mean
+        gram += x.T @ x + np.outer(delta, delta) * (total * n / (total + n))
+        mean += delta * (n / (total + n))
+        total += n
+    return gram
 '''
+FLOOR_SCRIPT = (
+    "import sys\nimport numpy as np\nimport pyarrow.parquet as pq\n\n" + STREAMED_GRAM
+    + "\ngram = streamed_gram(sys.argv[1])\nprint(gram.shape[0], float(gram[0, 0]))\n")
 
 #: The floor for the small table: import numpy and pyarrow.parquet, read the file, form X'X.
 #: ``ParquetFile.read`` rather than ``pq.read_table``: the latter imports pyarrow.dataset and,
@@ -107,6 +106,7 @@ import json
 import sys
 import time
 
+''' + STREAMED_GRAM + '''
 path, which = sys.argv[1], sys.argv[2]
 if which == "gate":
     from gate import check  # loads the pipeline's modules (gate/__init__ is lazy)
@@ -114,36 +114,11 @@ if which == "gate":
     def once():
         return check(path)
 else:
-    import numpy as np
+    import numpy as np  # the globals streamed_gram uses
     import pyarrow.parquet as pq
 
     def once():
-        file = pq.ParquetFile(path, pre_buffer=False, buffer_size=1 << 18)
-        meta = file.metadata
-        p = meta.num_columns
-        largest = max(meta.row_group(g).num_rows for g in range(meta.num_row_groups))
-        buffer = np.empty((p, largest)).T
-        total, mean, gram = 0, np.zeros(p), np.zeros((p, p))
-        for group in range(meta.num_row_groups):
-            table = file.read_row_group(group, use_threads=True)
-            n = table.num_rows
-            x = buffer[:n]
-            for j, column in enumerate(table.columns):
-                start = 0
-                for chunk in column.chunks:
-                    k = len(chunk)
-                    x[start:start + k, j] = np.frombuffer(
-                        chunk.buffers()[1], dtype=np.float64, count=chunk.offset + k
-                    )[chunk.offset:]
-                    start += k
-            del table
-            m = x.mean(axis=0)
-            x -= m
-            delta = m - mean
-            gram += x.T @ x + np.outer(delta, delta) * (total * n / (total + n))
-            mean += delta * (n / (total + n))
-            total += n
-        return gram
+        return streamed_gram(path)
 
 start = time.perf_counter()
 once()

@@ -343,7 +343,9 @@ def _fill(path: Path, block: int) -> None:
         os.close(fd)
 
 
-def test_full_disk_cuts_a_short_write_back(verdict: Verdict) -> None:
+@pytest.fixture
+def full_disk_folder() -> Iterator[Path]:
+    """A tiny tmpfs of our own, mounted in a temp folder and unmounted afterwards (root only)."""
     if os.geteuid() != 0:
         pytest.skip("mounting a tiny tmpfs to fill needs root; not running as root")
     try:
@@ -352,64 +354,61 @@ def test_full_disk_cuts_a_short_write_back(verdict: Verdict) -> None:
     except (subprocess.CalledProcessError, FileNotFoundError) as exc:
         pytest.skip(f"cannot mount a tmpfs here ({exc}); a container without CAP_SYS_ADMIN")
     try:
-        log = folder / "audit.jsonl"
-        for k in range(2):
-            append_entry(log, _document(verdict, k))
-        intact = log.read_bytes()
-        # Fill the disk, leaving fewer bytes than one entry; the store copy goes elsewhere
-        # first, so make that fail too by filling everything.
-        filler = folder / "filler"
-        _fill(filler, 512)
-        failures = 0
-        for k in range(2, 6):
-            with contextlib.suppress(OutputError):
-                append_entry(log, _document(verdict, k))
-                continue
-            failures += 1
-            assert log.read_bytes() == intact  # cut back: no torn line stays
-        assert failures >= 1
-        assert verify_chain(log, check_store=False).ok
-        # Free some space: the next append works and chains onto the intact head.
-        filler.unlink()
-        append_entry(log, _document(verdict, 9))
-        report = verify_chain(log)
-        assert report.chain_ok and report.entries == 3
+        yield folder
     finally:
         mount.__exit__(None, None, None)
 
 
-def test_short_write_of_the_line_itself_is_cut_back(verdict: Verdict) -> None:
+def test_full_disk_cuts_a_short_write_back(verdict: Verdict, full_disk_folder: Path) -> None:
+    folder = full_disk_folder
+    log = folder / "audit.jsonl"
+    for k in range(2):
+        append_entry(log, _document(verdict, k))
+    intact = log.read_bytes()
+    # Fill the disk, leaving fewer bytes than one entry; the store copy goes elsewhere
+    # first, so make that fail too by filling everything.
+    filler = folder / "filler"
+    _fill(filler, 512)
+    failures = 0
+    for k in range(2, 6):
+        with contextlib.suppress(OutputError):
+            append_entry(log, _document(verdict, k))
+            continue
+        failures += 1
+        assert log.read_bytes() == intact  # cut back: no torn line stays
+    assert failures >= 1
+    assert verify_chain(log, check_store=False).ok
+    # Free some space: the next append works and chains onto the intact head.
+    filler.unlink()
+    append_entry(log, _document(verdict, 9))
+    report = verify_chain(log)
+    assert report.chain_ok and report.entries == 3
+
+
+def test_short_write_of_the_line_itself_is_cut_back(verdict: Verdict,
+                                                    full_disk_folder: Path) -> None:
     """The store copy fits but the log line does not: the log ends near the end of a page,
     the disk is full, so the write stops at the page end (a short write, as on the reported
     "505 of 513 bytes") or fails; either way the log is cut back to its previous end."""
-    if os.geteuid() != 0:
-        pytest.skip("mounting a tiny tmpfs to fill needs root; not running as root")
-    try:
-        mount = _tiny_tmpfs()
-        folder = mount.__enter__()
-    except (subprocess.CalledProcessError, FileNotFoundError) as exc:
-        pytest.skip(f"cannot mount a tmpfs here ({exc}); a container without CAP_SYS_ADMIN")
-    try:
-        log = folder / "audit.jsonl"
-        page = os.statvfs(folder).f_bsize
-        append_entry(log, _document(verdict, 0))
-        k = 1
-        # End the log closer to a page end than one line: lines only grow (seq, label), so the
-        # next one cannot fit in what is left of the page.
-        while page - log.stat().st_size % page >= len(_lines(log)[-1]) + 1:
-            append_entry(log, _document(verdict, k))
-            k += 1
-        intact = log.read_bytes()
-        document = _document(verdict, 99)
-        kept = store_path(log, hashlib.sha256(document).hexdigest())
-        kept.write_bytes(document)  # already stored, so only the log line needs space
-        _fill(folder / "filler", 64)
-        with pytest.raises(OutputError, match="cut back"):
-            append_entry(log, document)
-        assert log.read_bytes() == intact
-        assert verify_chain(log).ok
-    finally:
-        mount.__exit__(None, None, None)
+    folder = full_disk_folder
+    log = folder / "audit.jsonl"
+    page = os.statvfs(folder).f_bsize
+    append_entry(log, _document(verdict, 0))
+    k = 1
+    # End the log closer to a page end than one line: lines only grow (seq, label), so the
+    # next one cannot fit in what is left of the page.
+    while page - log.stat().st_size % page >= len(_lines(log)[-1]) + 1:
+        append_entry(log, _document(verdict, k))
+        k += 1
+    intact = log.read_bytes()
+    document = _document(verdict, 99)
+    kept = store_path(log, hashlib.sha256(document).hexdigest())
+    kept.write_bytes(document)  # already stored, so only the log line needs space
+    _fill(folder / "filler", 64)
+    with pytest.raises(OutputError, match="cut back"):
+        append_entry(log, document)
+    assert log.read_bytes() == intact
+    assert verify_chain(log).ok
 
 
 def _append_many(path: str, verdict: Verdict, count: int) -> None:
