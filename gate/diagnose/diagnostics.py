@@ -34,7 +34,6 @@ from dataclasses import dataclass
 from typing import Literal
 
 import numpy as np
-import scipy.linalg as sla
 
 from gate.numerics.kernels import (
     EPS,
@@ -277,7 +276,7 @@ def _rank_and_dependencies(rt: FloatArray, plan: ExactPassPlan, share: FloatArra
     design[0, 0] = 1.0
     design[0, 1:] = along_intercept
     design[1:, 1:] = rt * share
-    singular = sla.svd(design, compute_uv=False, check_finite=False)
+    singular = np.linalg.svd(design, compute_uv=False)
     threshold = plan.tolerance * float(singular[0])
     rank = max(int(np.count_nonzero(singular > threshold)) - 1, 0)  # without the intercept
     if rank == q:
@@ -337,6 +336,8 @@ def _left_to_right(rt: FloatArray, threshold: float, share: FloatArray, *, skip:
     column is dependent (checked by its residual, all at once: with n << p most columns are).
     None when the count differs from ``expected``.
     """
+    import scipy.linalg as sla  # rank-deficient designs only: kept off the full-rank path
+
     columns = [k for k in range(rt.shape[1]) if k not in skip]
     full = len(columns) - expected  # how many columns the rank says are kept
     q_factor, r_factor = sla.qr(rt[:, columns], check_finite=False)
@@ -378,6 +379,8 @@ def _pivoted_dependencies(rt: FloatArray, rank: int, share: FloatArray
                           ) -> tuple[IntArray, list[Relation]]:
     """Column-pivoted QR of the share-weighted factor; coefficients back in rt's units
     (w_d z_d = sum c_k w_k z_k  ->  z_d = sum (c_k w_k / w_d) z_k)."""
+    import scipy.linalg as sla  # rank-deficient designs only: kept off the full-rank path
+
     q = rt.shape[1]
     _, rp, pivot = sla.qr(rt * share, pivoting=True, mode="economic", check_finite=False)
     lead = rp[:rank, :rank]

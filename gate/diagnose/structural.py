@@ -41,11 +41,15 @@ from dataclasses import dataclass
 from typing import Literal
 
 import numpy as np
-import scipy.linalg as sla
 
 from gate.design.plan import Design, DesignPlan, encode_block
 from gate.diagnose.diagnostics import Diagnostics
-from gate.numerics.kernels import FloatArray
+from gate.numerics.kernels import (
+    FloatArray,
+    cholesky_or_none,
+    squared_row_norms,
+    triangular_inverse,
+)
 from gate.policy.models import Policy
 from gate.read.sources import TableSource
 
@@ -338,10 +342,8 @@ def centred_vifs(d: Diagnostics, feature: int, parents: tuple[int, ...], slope: 
     moved = a.T @ comoment @ a
     norms = np.sqrt(np.diag(moved))
     corr = moved / np.outer(norms, norms)
-    try:
-        r = sla.cholesky(corr, lower=False, check_finite=False)
-    except np.linalg.LinAlgError:
+    r = cholesky_or_none(corr)
+    if r is None:
         return None
-    inverse = sla.solve_triangular(r, np.eye(kept.size), check_finite=False)
-    vif = np.einsum("ij,ij->i", inverse, inverse)
+    vif = squared_row_norms(triangular_inverse(r))
     return {int(c): float(vif[position[int(c)]]) for c in kept}

@@ -3,6 +3,12 @@
 Every kernel names its formula and reference. Callers: the exact-pass routing
 (``gate.stats.routing``), the diagnostics (``gate.diagnose.diagnostics``), and suggest's
 evaluation of candidate sets (``gate.remedies.search``).
+
+numpy.linalg only (LAPACK dpotrf, dgesv, dgesdd; BLAS dsyrk through ``a @ a.T``): importing
+scipy.linalg costs about 0.23 s per process with numpy 2.4 / scipy 1.17 (it clones numpy's
+namespace, which loads numpy.f2py and numpy.testing), more than a commit hook's whole check
+of a small table. scipy stays for the rank-deficient paths (pivoted QR, QR downdates) and
+suggest, imported where they run.
 """
 
 from __future__ import annotations
@@ -11,7 +17,6 @@ import math
 from typing import Literal
 
 import numpy as np
-import scipy.linalg as sla
 from numpy.typing import NDArray
 
 FloatArray = NDArray[np.float64]
@@ -39,10 +44,10 @@ def cholesky_or_none(matrix: FloatArray) -> FloatArray | None:
     if matrix.size == 0:
         return np.zeros((0, 0))
     try:
-        r = sla.cholesky(matrix, lower=False, check_finite=False)
-    except (np.linalg.LinAlgError, ValueError):
+        lower = np.linalg.cholesky(matrix)  # L L' = matrix, so R = L'
+    except np.linalg.LinAlgError:
         return None
-    r = np.asarray(r)
+    r = np.ascontiguousarray(lower.T)
     return r if np.all(np.isfinite(r)) and np.all(np.diag(r) > 0) else None
 
 
@@ -60,9 +65,9 @@ def certified_cholesky(corr: FloatArray, resolution: float
     rt = cholesky_or_none(corr)
     if rt is None:
         return None, None
-    inverse, info = sla.lapack.dtrtri(rt, lower=0)
-    inverse = np.asarray(inverse)
-    if info == 0 and np.all(np.isfinite(inverse)):
+    inverse = _upper_inverse(rt)
+    info = 0 if np.all(np.isfinite(inverse)) else 1
+    if info == 0:
         vif_sum = float(np.einsum("ij,ij->", inverse, inverse))
         if vif_sum * corr.shape[0] * resolution**2 < 1.0:
             return rt, inverse
@@ -78,25 +83,53 @@ def certified_cholesky(corr: FloatArray, resolution: float
     return None, None
 
 
+#: Below this order the inverse of a triangular block is one dense solve.
+_INVERSE_BLOCK = 64
+
+
+def _upper_inverse(r: FloatArray) -> FloatArray:
+    """Inverse of a nonsingular upper-triangular matrix, by halves:
+    inv([[A, B], [0, C]]) = [[inv(A), -inv(A) B inv(C)], [0, inv(C)]], so all the work is in
+    matrix products (about 2n^3/3 flops; LAPACK dtrtri does n^3/3 with triangular products,
+    which numpy does not expose). The blocked triangular inversions are analysed in Du Croz &
+    Higham (1992), IMA J. Numer. Anal. 12:1-19 (recalled from memory, not re-checked here);
+    the accuracy tests check this kernel against mpmath. A block of order <= 64 is solved
+    densely: LU with partial pivoting of an upper-triangular matrix pivots nowhere and has
+    L = I, so ``solve(block, I)`` is exactly the triangular back substitution."""
+    n = r.shape[0]
+    if n <= _INVERSE_BLOCK:
+        with np.errstate(all="ignore"):
+            return np.asarray(np.linalg.solve(r, np.eye(n)))
+    half = n // 2
+    top = _upper_inverse(r[:half, :half])
+    bottom = _upper_inverse(r[half:, half:])
+    inverse = np.zeros_like(r)
+    inverse[:half, :half] = top
+    inverse[half:, half:] = bottom
+    inverse[:half, half:] = -((top @ r[:half, half:]) @ bottom)
+    return inverse
+
+
 def triangular_inverse(r: FloatArray) -> FloatArray:
+    """Inverse of the upper-triangular factor; LinAlgError when it is singular."""
     if r.size == 0:
         return np.zeros((0, 0))
-    inverse, info = sla.lapack.dtrtri(r, lower=0)
-    if info != 0:
+    if not np.all(np.diag(r) != 0.0):
         raise np.linalg.LinAlgError("singular triangular factor after rank reduction")
-    return np.asarray(inverse)
+    inverse = _upper_inverse(np.ascontiguousarray(r))
+    if not np.all(np.isfinite(inverse)):
+        raise np.linalg.LinAlgError("singular triangular factor after rank reduction")
+    return inverse
 
 
 def upper_times_transpose(upper: FloatArray) -> FloatArray:
-    """U U' for upper-triangular U (LAPACK dlauum: a third of the flops of a general product),
+    """U U' for upper-triangular U. numpy hands ``a @ a.T`` (one buffer, one operand the
+    transposed view of the other) to BLAS dsyrk and mirrors the triangle, so the product is
     symmetric by construction."""
     if upper.size == 0:
         return np.zeros((0, 0))
-    product, info = sla.lapack.dlauum(upper, lower=0)
-    if info != 0:
-        raise np.linalg.LinAlgError(f"dlauum failed (info={info})")
-    top = np.triu(product)
-    return np.asarray(top + np.triu(top, 1).T)
+    upper = np.ascontiguousarray(upper)
+    return np.asarray(upper @ upper.T)
 
 
 def belsley_kuh_welsch(r: FloatArray) -> tuple[FloatArray, FloatArray]:
@@ -106,7 +139,7 @@ def belsley_kuh_welsch(r: FloatArray) -> tuple[FloatArray, FloatArray]:
     phi_jk = v_jk^2 / mu_k^2, pi_kj = phi_jk / sum_k phi_jk."""
     if r.size == 0:
         return np.ones(0), np.zeros((0, 0))
-    _, mu, vt = sla.svd(r, full_matrices=False, check_finite=False, lapack_driver="gesdd")
+    _, mu, vt = np.linalg.svd(r, full_matrices=False)  # LAPACK dgesdd
     indices = mu[0] / mu
     phi = (vt.T / mu) ** 2  # phi[j, k] = v_jk^2 / mu_k^2
     return np.asarray(indices), np.asarray((phi / phi.sum(axis=1, keepdims=True)).T)
@@ -166,7 +199,7 @@ def condition_indices(weight_sum: float, means: FloatArray, kept: IntArray, r_ke
     r, _ = scaled_design_factor(weight_sum, means, kept, r_kept, scales, scaling)
     if r.size == 0:
         return np.ones(0)
-    mu = sla.svd(r, compute_uv=False, check_finite=False, lapack_driver="gesdd")
+    mu = np.linalg.svd(r, compute_uv=False)  # LAPACK dgesdd
     return np.asarray(mu[0] / mu)
 
 

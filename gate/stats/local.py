@@ -128,10 +128,12 @@ class RunningGram:
 
     The same statistics and the same update as ``CentredGram.from_block`` followed by
     ``CentredGram.merge`` (Chan, Golub & LeVeque 1979, weighted): each chunk is centred on its
-    own mean, its cross-product is added by BLAS ``dsyrk`` (beta = 1) straight into one p x p
-    buffer, and the between-chunk term by the rank-one ``dsyr``. Only the upper triangle is
-    kept until :meth:`result`, so a chunk costs no p x p temporaries: at p = 10,000 the merge
-    route held about five 800 MB matrices at once.
+    own mean, its cross-product Z'Z is formed into one reused p x p scratch buffer (numpy hands
+    ``z.T @ z`` to BLAS dsyrk and mirrors the triangle, so it is symmetric by construction) and
+    added to the running total, and so is the rank-one between-chunk term. Two p x p buffers in
+    all, whatever the number of chunks: at p = 10,000 the merge route held about five 800 MB
+    matrices at once. (scipy's dsyrk with beta = 1 would save the scratch buffer, but importing
+    scipy.linalg costs ~0.23 s, more than a small table's whole check.)
     """
 
     def __init__(self, p: int) -> None:
@@ -139,12 +141,11 @@ class RunningGram:
         self._rows = 0
         self._weight_sum = 0.0
         self._mean: FloatArray = np.zeros(p)
-        self._upper: FloatArray = np.zeros((p, p), order="F")
+        self._total: FloatArray = np.zeros((p, p))
+        self._scratch: FloatArray | None = None
 
     def add(self, values: FloatArray, weights: FloatArray | None) -> None:
         """Fold in one block (n x p, finite); ``values`` is overwritten (centred)."""
-        from scipy.linalg.blas import dsyr, dsyrk
-
         n = values.shape[0]
         if weights is None:
             if n == 0:
@@ -160,15 +161,16 @@ class RunningGram:
             mean = (weights @ values) / total
             centred = np.subtract(values, mean, out=values)
             centred *= np.sqrt(weights)[:, None]
-        # C := C + Z'Z on the upper triangle; a C-ordered block is passed as Z' (no copy).
-        if centred.flags.c_contiguous:
-            dsyrk(1.0, centred.T, beta=1.0, c=self._upper, trans=0, overwrite_c=1)
-        else:
-            dsyrk(1.0, centred, beta=1.0, c=self._upper, trans=1, overwrite_c=1)
+        if self._scratch is None:
+            self._scratch = np.empty((self._p, self._p))
+        # C := C + Z'Z (dsyrk inside numpy: one operand is the transposed view of the other).
+        self._total += np.matmul(centred.T, centred, out=self._scratch)
         if self._weight_sum > 0.0:
             combined = self._weight_sum + total
             delta = mean - self._mean
-            dsyr(self._weight_sum * total / combined, delta, a=self._upper, overwrite_a=1)
+            # sqrt(w) delta on both sides: (a b) and (b a) round alike, so C stays symmetric.
+            root = delta * np.sqrt(self._weight_sum * total / combined)
+            self._total += np.multiply.outer(root, root, out=self._scratch)
             self._mean = self._mean + delta * (total / combined)
         else:
             self._mean = mean
@@ -176,18 +178,11 @@ class RunningGram:
         self._rows += rows
 
     def result(self) -> CentredGram:
-        """The statistics so far (the buffer is completed to the symmetric matrix in place)."""
+        """The statistics so far."""
         if self._weight_sum == 0.0:
             return CentredGram.empty(self._p)
-        full = self._upper
-        step = 1024
-        for start in range(0, self._p, step):
-            stop = min(start + step, self._p)
-            full[start:stop, :start] = full[:start, start:stop].T
-            diagonal = full[start:stop, start:stop]
-            diagonal[...] = np.triu(diagonal) + np.triu(diagonal, 1).T
-        # Symmetric, so the C-ordered transpose view is the same matrix.
-        return CentredGram.from_moments(self._rows, self._weight_sum, self._mean, full.T)
+        self._scratch = None
+        return CentredGram.from_moments(self._rows, self._weight_sum, self._mean, self._total)
 
 
 def encoded_chunks(source: TableSource, plan: DesignPlan, columns: Sequence[str], *,
