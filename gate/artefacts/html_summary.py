@@ -113,8 +113,20 @@ def summary_html(verdict: Verdict) -> str:
 
     Findings and what to do come first (within the first screen at 1280 x 900), the evidence
     tables next, provenance (hashes, versions, limits) last before the caution.
+
+    great-tables builds each table's body as a pandas "string" frame and writes every cell
+    into it one at a time; pandas 3 backs that dtype with pyarrow, where each single-cell
+    write rebuilds a chunk. Python-object storage, for this call only, writes cells in place
+    (small verdict: 0.144 -> 0.118 s; 20,000 x 2,000: 0.19 -> 0.16 s; same bytes).
     """
-    sections = [
+    import pandas as pd
+
+    with pd.option_context("mode.string_storage", "python"):
+        return _page(verdict, _sections(verdict))
+
+
+def _sections(verdict: Verdict) -> list[_Section]:
+    return [
         _Section("findings", "Findings and next step", _findings_section(verdict)),
         _Section("features", "Per feature", _features_section(verdict)),
         _Section("pairs", "Correlated pairs", _pairs_section(verdict)),
@@ -128,7 +140,6 @@ def summary_html(verdict: Verdict) -> str:
         _Section("caution", "How to read this", f"<p class=\"caution\">{html.escape(CAUTION)}"
                  "</p>"),
     ]
-    return _page(verdict, sections)
 
 
 # --- page ----------------------------------------------------------------------------------
