@@ -197,7 +197,7 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
 
     kept = nc[kept_local]
     r_kept = rt if plan.full_rank_certified else _refactor_columns(rt, kept_local)
-    # The certification already inverted Rt when the Gram route serves: one dtrtri per check.
+    # The certification already inverted Rt when the Gram route serves: one inversion per check.
     r_inverse = plan.cholesky_inverse if route == "gram" and plan.full_rank_certified \
         and plan.cholesky_inverse is not None else triangular_inverse(r_kept)
     vif = np.full(p, np.inf)

@@ -104,6 +104,7 @@ from gate.numerics.kernels import (
     gvif,
     scaled_design_factor,
     squared_row_norms,
+    triangular_inverse,
 )
 from gate.policy.models import Policy, today_utc
 from gate.remedies.confirm import confirm
@@ -469,8 +470,9 @@ class _Problem:
         inflation: dict[str, float] = {}
         explainers: dict[str, list[str]] = {}
         if kept.size:
-            inverse, info = sla.lapack.dtrtri(r, lower=0)
-            if info != 0 or not np.all(np.isfinite(inverse)):
+            try:
+                inverse = triangular_inverse(r)
+            except np.linalg.LinAlgError:
                 units = tuple(dict.fromkeys(self.column_unit[j] for j in kept))
                 return _State(False, [_Breach("singular", units, math.inf,
                                               f"{self.label}rank deficient")],

@@ -79,7 +79,7 @@ class ExactPassPlan:
     #: rank); the Gram route is used only while it is <= ACCURACY_TARGET.
     gram_vif_error_bound: float
     cholesky: FloatArray | None = field(default=None, repr=False)  # Rt when the Gram route serves
-    cholesky_inverse: FloatArray | None = field(default=None, repr=False)  # its inverse (dtrtri)
+    cholesky_inverse: FloatArray | None = field(default=None, repr=False)  # its inverse (kernels.triangular_inverse)
 
     def empty_factor(self) -> TriangularFactor:
         """The exact pass's starting factor: an intercept column, then the kept columns."""
