@@ -315,6 +315,9 @@ class EncodedBlock:
     counts: RowCounts
     used: NDArray[np.bool_] | None  # None: every row used
     missing: dict[str, NDArray[np.bool_]]
+    #: Column sums of ``values`` when every row is used (the finiteness check computes them
+    #: anyway; the main pass takes its chunk mean from them instead of a second pass).
+    sums: FloatArray | None = None
 
 
 def encode_block(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0
@@ -386,7 +389,7 @@ def encode_rows(plan: DesignPlan, chunk: pa.Table, *, first_row: int = 0,
         if weights is not None:
             weights = weights[used]
     counts = RowCounts(read=n, dropped=int(missing_rows.sum()), missing=missing)
-    return EncodedBlock(values, weights, counts, used, masks)
+    return EncodedBlock(values, weights, counts, used, masks, sums if used is None else None)
 
 
 def _fill_float(out: FloatArray, column: pa.ChunkedArray) -> None:

@@ -94,7 +94,7 @@ def main_pass(source: TableSource, plan: DesignPlan, *, chunk_rows: int | None =
     for _, block in encoded_chunks(source, plan, plan.read_columns, chunk_rows=chunk_rows,
                                    progress=progress, reuse=True):
         if merged is None and within_plain_range(block.values):
-            running.add(block.values, block.weights)
+            running.add(block.values, block.weights, sums=block.sums)
         else:
             # A column near the ends of the float range (squares would over- or underflow):
             # from here on, the scaled accumulator (exact power-of-two scaling per column).
@@ -144,14 +144,17 @@ class RunningGram:
         self._total: FloatArray = np.zeros((p, p))
         self._scratch: FloatArray | None = None
 
-    def add(self, values: FloatArray, weights: FloatArray | None) -> None:
-        """Fold in one block (n x p, finite); ``values`` is overwritten (centred)."""
+    def add(self, values: FloatArray, weights: FloatArray | None, *,
+            sums: FloatArray | None = None) -> None:
+        """Fold in one block (n x p, finite); ``values`` is overwritten (centred). ``sums``:
+        the block's column sums if already known (unweighted: the mean is then ``sums / n``,
+        the same bits numpy's ``mean`` gives, without another pass over the block)."""
         n = values.shape[0]
         if weights is None:
             if n == 0:
                 return
             total, rows = float(n), n
-            mean = values.mean(axis=0)
+            mean = sums / n if sums is not None else values.mean(axis=0)
             centred = np.subtract(values, mean, out=values)
         else:
             total = float(weights.sum())
