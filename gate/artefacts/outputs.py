@@ -107,7 +107,7 @@ def write_check_outputs(verdict: Verdict, out_dir: Path, *, html: bool = True,
     """Write DIR/verdict.json and DIR/summary.html, and the JUnit XML file and audit-log entry
     when asked, as one atomic set (see the module docstring); return the paths written.
 
-    The audit entry hashes the exact verdict.json bytes written here. great-tables and pandas
+    The audit entry hashes the exact verdict.json bytes written here. great-tables and polars
     are imported only inside the HTML writer.
     """
     if full_matrices:
