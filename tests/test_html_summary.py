@@ -383,3 +383,45 @@ def test_wide_design_stays_small() -> None:
     assert f"Showing {shown} of 400 features and groups" in _text(_section(page, "features"))
     matrix = _body_rows(page, "matrix")  # only the 20 planted features, named by findings
     assert [row.split()[1] for row in matrix] == [f"sensor_{k:03d}" for k in range(20)]
+
+
+#: Run in a fresh interpreter: polars' thread pool must never start in the test process, whose
+#: later tests fork writers (tests/test_faults.py); that hazard is why polars is opt-in.
+SAME_BYTES_SCRIPT = r"""
+import sys
+import numpy as np
+import pandas as pd
+from gate.api import check
+from gate.artefacts import frames
+from gate.artefacts.html_summary import summary_html
+
+sys.modules.setdefault("IPython", None)
+rng = np.random.default_rng(20_260_516)  # invented fleet-maintenance readings
+x = rng.standard_normal((300, 5))
+frame = pd.DataFrame(x, columns=["oil <temp>", "rpm & load", "idle", "km", "hours"])
+frame["hours_again"] = frame["hours"] * 3.0 + 2.0   # an exact dependency
+frame["flat"] = 7.0                                   # a constant column (NaN correlations)
+frame["near_km"] = frame["km"] + 1e-3 * rng.standard_normal(300)
+frame["depot"] = np.where(rng.random(300) > 0.5, "north\u00a0<b>", "south & co")
+verdicts = [check(frame), check(frame[["oil <temp>", "rpm & load"]]),
+            check(pd.DataFrame(rng.standard_normal((60, 25)),
+                               columns=[f"sensor_{j}" for j in range(25)]))]
+pandas_pages = [summary_html(v) for v in verdicts]
+frames.use_polars_frames()
+polars_pages = [summary_html(v) for v in verdicts]
+assert "polars" in sys.modules
+for k, (a, b) in enumerate(zip(pandas_pages, polars_pages)):
+    assert a == b, (k, next(i for i, (p, q) in enumerate(zip(a, b)) if p != q))
+print(len(verdicts), sum(len(p) for p in polars_pages))
+"""
+
+
+def test_polars_and_pandas_frames_give_the_same_page() -> None:
+    """Invariant: the frame library great-tables reads (pandas by default, polars in the `gate`
+    command) never changes a byte of the page: escaping-laden names, a constant column (NaN
+    correlations, drawn as missing), an exact dependency, a categorical, a 25-feature matrix
+    (capped at 20) and a two-feature design."""
+    result = subprocess.run([sys.executable, "-c", SAME_BYTES_SCRIPT], capture_output=True,
+                            text=True, timeout=300, check=False)
+    assert result.returncode == 0, result.stderr[-3000:]
+    assert result.stdout.split()[0] == "3"

@@ -12,13 +12,16 @@ great-tables trusts their output as markup. The CSP meta tag is a second line of
 
 Size and speed: great-tables writes every body cell into its frame one at a time, so the
 tables show what a reader acts on and cap the rest (breaches first; verdict.json keeps every
-number). The frames are polars, the cheapest input great-tables supports: measured on one
-machine, a 10-feature verdict renders in 0.07 s from polars against 0.12 s from pandas
-(pandas 3 keeps strings in pyarrow and rebuilds a chunk per cell write), and importing polars
-costs less than importing pandas (0.20 s vs 0.30 s), which a small table's whole check
-notices. pyarrow input is experimental in great-tables 1.1: its cell writes call
-``pyarrow.array``, which imports pandas anyway, and fail on formatted float columns. The page
-is byte-identical to the pandas-built one (checked on three verdicts when the input changed).
+number). The frames are pandas by default and polars in the `gate` command
+(``gate.artefacts.frames``), the cheapest input great-tables supports: measured on one
+machine, a 10-feature page renders in 0.07 s from polars against 0.12 s from pandas (pandas 3
+keeps strings in pyarrow and rebuilds a chunk per cell write), and polars imports in 0.20 s
+against pandas' 0.30 s, which a small table's whole check notices (1.23 -> 1.00 s). Polars
+is not the default because its thread pool does not survive ``fork``: a process forked after
+rendering a page (``multiprocessing`` on Linux, a test harness) would hang in its next render.
+The command never forks. Both inputs give the same bytes (tests/test_html_summary.py).
+pyarrow input is experimental in great-tables 1.1: its cell writes call ``pyarrow.array``,
+which imports pandas anyway, and fail on formatted float columns.
 """
 
 from __future__ import annotations
@@ -33,6 +36,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from gate.artefacts.files import write_atomic
+from gate.artefacts.frames import frame_library
 from gate.judge.findings import LEVELS, Finding, counts_text
 from gate.judge.rules import (
     INTERCEPT_NAME,
@@ -116,7 +120,18 @@ def summary_html(verdict: Verdict) -> str:
     Findings and what to do come first (within the first screen at 1280 x 900), the evidence
     tables next, provenance (hashes, versions, limits) last before the caution.
     """
-    sections = [
+    if frame_library() == "polars":
+        return _page(verdict, _sections(verdict))
+    import pandas as pd
+
+    # pandas 3 backs the "string" frames great-tables builds with pyarrow, rebuilding a chunk
+    # per cell write; Python-object storage, for this call only, writes in place (-15%).
+    with pd.option_context("mode.string_storage", "python"):
+        return _page(verdict, _sections(verdict))
+
+
+def _sections(verdict: Verdict) -> list[_Section]:
+    return [
         _Section("findings", "Findings and next step", _findings_section(verdict)),
         _Section("features", "Per feature", _features_section(verdict)),
         _Section("pairs", "Correlated pairs", _pairs_section(verdict)),
@@ -130,7 +145,6 @@ def summary_html(verdict: Verdict) -> str:
         _Section("caution", "How to read this", f"<p class=\"caution\">{html.escape(CAUTION)}"
                  "</p>"),
     ]
-    return _page(verdict, sections)
 
 
 # --- page ----------------------------------------------------------------------------------
@@ -233,11 +247,17 @@ def _glance(verdict: Verdict) -> str:
 def _table(rows: list[dict[str, Any]], columns: dict[str, str], table_id: str, *,
            stub: str | None = None, right: Iterable[str] = ()) -> GT:
     """A GT over string cells (escaped by great-tables) with our house style."""
-    import polars as pl
     from great_tables import GT
 
-    frame = pl.DataFrame({name: [_cell(row.get(name)) for row in rows] for name in columns},
-                         schema={name: pl.String for name in columns})
+    texts = {name: [_cell(row.get(name)) for row in rows] for name in columns}
+    if frame_library() == "polars":
+        import polars as pl
+
+        frame: Any = pl.DataFrame(texts, schema={name: pl.String for name in columns})
+    else:
+        import pandas as pd
+
+        frame = pd.DataFrame(texts, columns=list(columns), dtype=object)
     table = GT(frame, rowname_col=stub, id=table_id)
     table = table.cols_label(cases={k: v for k, v in columns.items() if k != stub})
     right = [c for c in right if c in columns]
@@ -702,18 +722,26 @@ def _matrix_section(verdict: Verdict) -> str:
                      f"this design has {len(names):,} and no finding names two of them. "
                      "verdict.json (with --full-matrices, matrices.npz) holds every "
                      "correlation.")
-    import polars as pl
     from great_tables import GT
 
     corr = np.round(verdict.diagnostics.correlation[np.ix_(chosen, chosen)], 6)
     keys = [f"c{k}" for k in range(p)]
-    # Numbered columns keep the matrix narrow; the row labels carry number and name. A
-    # constant column's NaN becomes a null: polars keeps NaN a number, great-tables' "missing".
-    frame = pl.DataFrame(
-        [pl.Series("feature", [f"{k + 1}. {names[c]}" for k, c in enumerate(chosen)],
-                   dtype=pl.String),
-         *(pl.Series(key, corr[:, k], dtype=pl.Float64, nan_to_null=True)
-           for k, key in enumerate(keys))])
+    # Numbered columns keep the matrix narrow; the row labels carry number and name.
+    labels = [f"{k + 1}. {names[c]}" for k, c in enumerate(chosen)]
+    if frame_library() == "polars":
+        import polars as pl
+
+        # A constant column's NaN as null, polars' own missing value (great-tables 1.1 also
+        # reads a polars NaN as missing; the null does not depend on that).
+        frame: Any = pl.DataFrame(
+            [pl.Series("feature", labels, dtype=pl.String),
+             *(pl.Series(key, corr[:, k], dtype=pl.Float64, nan_to_null=True)
+               for k, key in enumerate(keys))])
+    else:
+        import pandas as pd
+
+        frame = pd.DataFrame(corr, columns=keys)
+        frame.insert(0, "feature", labels)
     table = GT(frame, rowname_col="feature", id="matrix")
     table = table.cols_label(cases={key: str(k + 1) for k, key in enumerate(keys)})
     table = table.fmt_number(columns=keys, decimals=2).sub_missing(columns=keys,

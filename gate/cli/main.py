@@ -26,6 +26,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         # package, ~30 ms) before building the first model; the policy models of a command
         # have no use for them. A value the user set is kept.
         os.environ.setdefault("PYDANTIC_DISABLE_PLUGINS", "__all__")
+        # The command never forks after rendering, so summary.html may use polars frames.
+        from gate.artefacts.frames import use_polars_frames
+
+        use_polars_frames()
     parser = build_parser()
     args = parser.parse_args(argv)
     handler: Callable[[argparse.Namespace], int] | None = getattr(args, "handler", None)
