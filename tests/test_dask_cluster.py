@@ -23,6 +23,7 @@ import subprocess
 import sys
 import time
 from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -69,14 +70,16 @@ def _stop(process: subprocess.Popen[bytes]) -> None:
             process.wait(STOP_TIMEOUT_S)
 
 
-@pytest.fixture(scope="module")
-def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Cluster]:
+@contextmanager
+def running_cluster(base: Path, *, worker_env: dict[str, str] | None = None,
+                    hide: bool = False) -> Iterator[Cluster]:
+    """One scheduler and one worker process, each in its own folder under ``base``; stopped
+    (terminate, wait, kill on timeout) however the block ends."""
     from distributed import Client
 
-    base = tmp_path_factory.mktemp("cluster")
     scheduler_dir, worker_dir, hidden = base / "scheduler", base / "worker", base / "hidden"
     for folder in (scheduler_dir, worker_dir, hidden):
-        folder.mkdir()
+        folder.mkdir(parents=True)
     address_file = base / "scheduler.json"
     dask = [sys.executable, "-m", "dask"]
     processes: list[subprocess.Popen[bytes]] = []
@@ -88,7 +91,7 @@ def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Cluster]:
                 cwd=scheduler_dir, env=_env(), stdout=log, stderr=subprocess.STDOUT))
         worker = [*dask, "worker", "--scheduler-file", str(address_file), "--nworkers", "1",
                   "--nthreads", "1", "--no-dashboard"]
-        can_hide = os.geteuid() == 0 and shutil.which("unshare") is not None and \
+        can_hide = hide and os.geteuid() == 0 and shutil.which("unshare") is not None and \
             subprocess.run(["unshare", "-m", "--propagation", "private", "true"],
                            check=False, capture_output=True).returncode == 0
         if can_hide:
@@ -96,8 +99,8 @@ def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Cluster]:
             worker = ["unshare", "-m", "--propagation", "private", "sh", "-c",
                       'mount -t tmpfs gate-hidden "$0" && exec "$@"', str(hidden), *worker]
         with (worker_dir / "log").open("wb") as log:
-            processes.append(subprocess.Popen(worker, cwd=worker_dir, env=_env(), stdout=log,
-                                              stderr=subprocess.STDOUT))
+            processes.append(subprocess.Popen(worker, cwd=worker_dir, env=worker_env or _env(),
+                                              stdout=log, stderr=subprocess.STDOUT))
         deadline = time.monotonic() + START_TIMEOUT_S
         while not address_file.exists() or not address_file.read_text().strip():
             assert time.monotonic() < deadline, "the scheduler did not start"
@@ -111,6 +114,12 @@ def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Cluster]:
         for process in reversed(processes):
             _stop(process)
     assert all(p.returncode is not None for p in processes)  # nothing left running
+
+
+@pytest.fixture(scope="module")
+def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Cluster]:
+    with running_cluster(tmp_path_factory.mktemp("cluster"), hide=True) as running:
+        yield running
 
 
 def run_local(args: list[str], cwd: Path, capsys: pytest.CaptureFixture[str],
@@ -324,3 +333,30 @@ def test_unreachable_scheduler_is_exit_2_after_the_stated_timeout(tmp_path: Path
                              f"tcp://127.0.0.1:{port} within {SCHEDULER_TIMEOUT_S} s; start it "
                              "(dask scheduler) or fix --scheduler\n")
     assert SCHEDULER_TIMEOUT_S <= elapsed < SCHEDULER_TIMEOUT_S + 60
+
+
+def test_workers_that_cannot_import_gate_are_exit_2_at_once(tmp_path: Path) -> None:
+    """A worker whose environment lacks gate (here: a `gate` package first on its path that
+    fails to import, as a missing install does) used to drop its connection on the first task
+    it could not unpickle, and the check then waited for ever. Now: exit 2 before any task,
+    one line naming the cause and the fix, and the worker is still up."""
+    fake = tmp_path / "no-gate"
+    (fake / "gate").mkdir(parents=True)
+    (fake / "gate" / "__init__.py").write_text(
+        'raise ModuleNotFoundError("No module named \'gate\'", name="gate")\n')
+    worker_env = {**os.environ, "PYTHONPATH": str(fake)}
+    table = tmp_path / "fleet.parquet"
+    pq.write_table(fleet_table(200), table)
+    with running_cluster(tmp_path / "cluster", worker_env=worker_env) as bad:
+        start = time.monotonic()
+        result = run_cli(["fleet.parquet", "--engine", "dask", "--scheduler", bad.address,
+                          "--no-html"], tmp_path)
+        assert time.monotonic() - start < 120
+        assert result.returncode == 2, result.stderr[-2000:]
+        lines = result.stderr.strip().splitlines()
+        assert len(lines) == 1 and "Traceback" not in result.stderr, result.stderr
+        assert "cannot import gate" in lines[0] and "install collinearity-gate" in lines[0]
+        from distributed import Client
+
+        with Client(bad.address, timeout="30s") as client:  # type: ignore[no-untyped-call]
+            assert len(client.scheduler_info()["workers"]) == 1  # the worker is still up

@@ -409,12 +409,14 @@ class DaskEngine:
         scheduler = self._scheduler
         if scheduler is not None and not isinstance(scheduler, str):
             self._client = scheduler  # a Client the caller owns
+            self._require_gate_on_workers("the Client's cluster")
             return self
         if scheduler is None:
             try:
                 from distributed import get_client
 
                 self._client = get_client()
+                self._require_gate_on_workers("the current Dask client's cluster")
                 return self
             except ValueError:
                 # No dashboard, its HTTP server on a free port (not 8787, which may be taken),
@@ -446,7 +448,30 @@ class DaskEngine:
             self.__exit__(None, None, None)
             raise TableError(f"the Dask scheduler at {shown} has no worker after {seconds} s; "
                              f"start one (dask worker {shown})") from None
+        self._require_gate_on_workers(f"the Dask scheduler at {shown}")
         return self
+
+    def _require_gate_on_workers(self, where: str) -> None:
+        """TableError unless every worker imports gate. A worker that cannot unpickle a task
+        (its functions live in gate) drops its connection, and the check would then wait for
+        ever for a worker that never answers (seen with an external `dask worker` whose
+        environment lacked gate). ``pydoc.locate`` is a standard-library function the worker
+        can run: None when the module is missing, an error when importing it fails."""
+        import pydoc
+
+        try:
+            found = self.client.run(pydoc.locate, "gate.stats.dask.run_guarded")
+        except Exception as exc:  # noqa: BLE001 - a broken install on a worker, said in one line
+            self.__exit__(None, None, None)
+            raise TableError(f"{where}: a worker cannot import gate ({_shown(_first_line(exc))}); "
+                             "install collinearity-gate in every worker's environment"
+                             ) from None
+        missing = sorted(str(worker) for worker, value in found.items() if value is None)
+        if missing:
+            self.__exit__(None, None, None)
+            raise TableError(f"{where}: {len(missing)} worker{'s' if len(missing) > 1 else ''} "
+                             f"cannot import gate (first: {_shown(missing[0])}); install "
+                             "collinearity-gate in every worker's environment")
 
     def __exit__(self, kind: type[BaseException] | None, exc: BaseException | None,
                  tb: TracebackType | None) -> None:
