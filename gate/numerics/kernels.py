@@ -66,8 +66,8 @@ def certified_cholesky(corr: FloatArray, resolution: float
     if rt is None:
         return None, None
     inverse = _upper_inverse(rt)
-    info = 0 if np.all(np.isfinite(inverse)) else 1
-    if info == 0:
+    finite = bool(np.all(np.isfinite(inverse)))
+    if finite:
         vif_sum = float(np.einsum("ij,ij->", inverse, inverse))
         if vif_sum * corr.shape[0] * resolution**2 < 1.0:
             return rt, inverse
@@ -79,7 +79,7 @@ def certified_cholesky(corr: FloatArray, resolution: float
             return rt, inverse
     eigenvalues = np.linalg.eigvalsh(corr)
     if eigenvalues[0] >= (resolution**2) * eigenvalues[-1]:
-        return rt, (inverse if info == 0 else None)
+        return rt, (inverse if finite else None)
     return None, None
 
 
@@ -106,7 +106,8 @@ def _upper_inverse(r: FloatArray) -> FloatArray:
     inverse = np.zeros_like(r)
     inverse[:half, :half] = top
     inverse[half:, half:] = bottom
-    inverse[:half, half:] = -((top @ r[:half, half:]) @ bottom)
+    with np.errstate(all="ignore"):  # an inverse beyond the float range: inf, checked by callers
+        inverse[:half, half:] = -((top @ r[:half, half:]) @ bottom)
     return inverse
 
 
@@ -139,7 +140,8 @@ def belsley_kuh_welsch(r: FloatArray) -> tuple[FloatArray, FloatArray]:
     phi_jk = v_jk^2 / mu_k^2, pi_kj = phi_jk / sum_k phi_jk."""
     if r.size == 0:
         return np.ones(0), np.zeros((0, 0))
-    _, mu, vt = np.linalg.svd(r, full_matrices=False)  # LAPACK dgesdd
+    u, mu, vt = np.linalg.svd(r, full_matrices=False)  # LAPACK dgesdd
+    del u  # p x p, not needed: freed before the proportions are formed
     indices = mu[0] / mu
     phi = (vt.T / mu) ** 2  # phi[j, k] = v_jk^2 / mu_k^2
     return np.asarray(indices), np.asarray((phi / phi.sum(axis=1, keepdims=True)).T)
