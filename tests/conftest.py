@@ -124,6 +124,30 @@ def write_policy(tmp_path: Path) -> Callable[..., Path]:
     return _write
 
 
+def mp_columns_and_vifs(x: np.ndarray) -> tuple[list[list[Any]], list[Any]]:
+    """Reference VIFs in 50-digit mpmath: VIF_j = [corr^-1]_jj, corr from the exactly centred
+    cross-products of ``x`` (n x p); also the columns as mpmath numbers, for further
+    references on the same data."""
+    import mpmath
+
+    n, p = x.shape
+    with mpmath.workdps(50):
+        cols = [[mpmath.mpf(float(v)) for v in x[:, j]] for j in range(p)]
+        means = [mpmath.fsum(c) / n for c in cols]
+        centred = [[v - m for v in c] for c, m in zip(cols, means)]
+        comoment = mpmath.matrix(p, p)
+        for i in range(p):
+            for j in range(i, p):
+                comoment[i, j] = comoment[j, i] = mpmath.fsum(
+                    a * b for a, b in zip(centred[i], centred[j]))
+        corr = mpmath.matrix(p, p)
+        for i in range(p):
+            for j in range(p):
+                corr[i, j] = comoment[i, j] / mpmath.sqrt(comoment[i, i] * comoment[j, j])
+        inverse = mpmath.inverse(corr)
+        return cols, [inverse[j, j] for j in range(p)]
+
+
 def policy_from(text: str) -> Policy:
     return parse_policy(textwrap.dedent(text).lstrip("\n"), source="<test>")
 

@@ -20,6 +20,7 @@ import mpmath
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import mp_columns_and_vifs
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -178,22 +179,7 @@ def test_extreme_chunks_accumulate_like_the_scaled_copy() -> None:
 
 def mp_vifs(x: np.ndarray) -> list[Any]:
     """VIF_j = [corr^-1]_jj with corr from exact centred sums, mpmath at 50 digits."""
-    n, p = x.shape
-    with mpmath.workdps(50):
-        cols = [[mpmath.mpf(float(v)) for v in x[:, j]] for j in range(p)]
-        means = [mpmath.fsum(c) / n for c in cols]
-        centred = [[v - m for v in c] for c, m in zip(cols, means)]
-        gram = mpmath.matrix(p, p)
-        for i in range(p):
-            for j in range(i, p):
-                gram[i, j] = gram[j, i] = mpmath.fsum(a * b for a, b in zip(centred[i],
-                                                                              centred[j]))
-        corr = mpmath.matrix(p, p)
-        for i in range(p):
-            for j in range(p):
-                corr[i, j] = gram[i, j] / mpmath.sqrt(gram[i, i] * gram[j, j])
-        inverse = mpmath.inverse(corr)
-        return [inverse[j, j] for j in range(p)]
+    return mp_columns_and_vifs(x)[1]
 
 
 def mp_relative_error(actual: np.ndarray, reference: list[Any]) -> float:

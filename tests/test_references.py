@@ -15,6 +15,7 @@ import pandas as pd
 import pytest
 import scipy.linalg as sla
 import statsmodels.datasets.longley as longley_data
+from conftest import mp_columns_and_vifs
 from statsmodels.stats.outliers_influence import variance_inflation_factor
 from statsmodels.tools import add_constant
 
@@ -109,21 +110,8 @@ def _mp_longley_reference(x: np.ndarray) -> tuple[list[Any], Any]:
     """VIFs (diagonal of the inverse correlation matrix) and the Belsley-Kuh-Welsch condition
     number (unit-length columns of [1, X]), both computed in 50-digit arithmetic."""
     n, p = x.shape
+    cols, vif = mp_columns_and_vifs(x)
     with mpmath.workdps(50):
-        cols = [[mpmath.mpf(float(v)) for v in x[:, j]] for j in range(p)]
-        means = [mpmath.fsum(c) / n for c in cols]
-        centred = [[v - m for v in c] for c, m in zip(cols, means)]
-        comoment = mpmath.matrix(p, p)
-        for i in range(p):
-            for j in range(i, p):
-                comoment[i, j] = comoment[j, i] = mpmath.fsum(
-                    a * b for a, b in zip(centred[i], centred[j]))
-        corr = mpmath.matrix(p, p)
-        for i in range(p):
-            for j in range(p):
-                corr[i, j] = comoment[i, j] / mpmath.sqrt(comoment[i, i] * comoment[j, j])
-        inverse = mpmath.inverse(corr)
-        vif = [inverse[i, i] for i in range(p)]
         design = mpmath.matrix(n, p + 1)
         for j, column in enumerate([[mpmath.mpf(1)] * n, *cols]):
             norm = mpmath.sqrt(mpmath.fsum(v * v for v in column))
