@@ -437,6 +437,59 @@ def test_condition_indices_and_proportions_match_numpy_svd(
             list(indices), rel=1e-9)
 
 
+def _factor_with_condition(order: int, condition: float, seed: int) -> np.ndarray:
+    """Upper factor of a 3p x p matrix with unit columns and singular values geometric from 1
+    to 1/condition before the columns are scaled (invented, seeded)."""
+    rng = np.random.default_rng(seed)
+    left, _ = np.linalg.qr(rng.normal(size=(3 * order, order)))
+    right, _ = np.linalg.qr(rng.normal(size=(order, order)))
+    a = (left * np.geomspace(1.0, 1.0 / condition, order)) @ right.T
+    a /= np.linalg.norm(a, axis=0)
+    return np.asarray(np.linalg.qr(a, mode="r"))
+
+
+def _mp_bkw(r: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Belsley, Kuh & Welsch (1980, ch. 3) from mpmath's SVD at 40 digits of the same factor."""
+    with mpmath.workdps(40):
+        _, s, v = mpmath.svd_r(mpmath.matrix(r.tolist()))
+        order = r.shape[0]
+        mu = [s[k] for k in range(order)]
+        phi = [[v[k, j] ** 2 / mu[k] ** 2 for k in range(order)] for j in range(order)]
+        proportions = [[phi[j][k] / mpmath.fsum(phi[j]) for j in range(order)]
+                       for k in range(order)]
+        indices = [max(mu) / m for m in mu]
+        keys = sorted(range(order), key=lambda k: indices[k])
+        return (np.array([float(indices[k]) for k in keys]),
+                np.array([[float(proportions[k][j]) for j in range(order)] for k in keys]))
+
+
+@pytest.mark.parametrize(("condition", "method"), [
+    (10.0, "eigh"), (90.0, "eigh"), (120.0, "svd"), (1e4, "svd"), (1e7, "svd")])
+def test_spectrum_routes_match_mpmath_svd(condition: float, method: str,
+                                          record_accuracy: Recorder) -> None:
+    # The condition indices and proportions come from r'r (LAPACK dsyevd) while the condition
+    # number is at most EIGEN_ROUTE_CONDITION = 100, else from the SVD (dgesdd). Reference:
+    # mpmath's SVD of the same factor at 40 digits. Tolerances: the eigen route's error grows
+    # like eps * condition^2 (1.1e-12 at 100 in double precision terms), the SVD's like
+    # eps * condition; measured here at most 9e-14 (indices) and 4e-14 (proportions) for the
+    # eigen route.
+    from gate.numerics.kernels import belsley_kuh_welsch, spectrum
+
+    r = _factor_with_condition(12, condition, SEED + int(condition))
+    assert spectrum(r, vectors=True).method == method
+    assert spectrum(r, vectors=False).method == method
+    indices, proportions = belsley_kuh_welsch(r)
+    expected_indices, expected_proportions = _mp_bkw(r)
+    errors = relative_errors(indices, expected_indices)
+    proportion_error = float(np.max(np.abs(proportions - expected_proportions)))
+    record_accuracy(f"BKW indices ({method} route) vs mpmath 40-digit SVD", float(errors.max()))
+    record_accuracy(f"BKW proportions ({method} route, absolute) vs mpmath 40-digit SVD",
+                    proportion_error)
+    index_tolerance = 1e-12 if condition < 1e3 else 1e-15 * condition * 100
+    assert errors.max() < index_tolerance
+    assert proportion_error < 1e-11
+
+
 def test_weighted_statistics_match_statsmodels_weighted_correlation() -> None:
     # Source: statsmodels.stats.weightstats.DescrStatsW (weighted correlation), and VIF as the
     # diagonal of the inverse weighted correlation matrix.
