@@ -172,7 +172,7 @@ def spectrum(r: FloatArray, *, vectors: bool) -> Spectrum:
         u, mu, vt = np.linalg.svd(r, full_matrices=False)  # LAPACK dgesdd
         del u  # p x p, not needed: freed before the proportions are formed
         return Spectrum(mu, vt, "svd")
-    return Spectrum(np.linalg.svd(r, compute_uv=False), None, "svd")
+    return Spectrum(np.asarray(np.linalg.svd(r, compute_uv=False), dtype=np.float64), None, "svd")
 
 
 def belsley_kuh_welsch(r: FloatArray) -> tuple[FloatArray, FloatArray]:
