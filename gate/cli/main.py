@@ -26,6 +26,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         # package, ~30 ms) before building the first model; the policy models of a command
         # have no use for them. A value the user set is kept.
         os.environ.setdefault("PYDANTIC_DISABLE_PLUGINS", "__all__")
+        # OpenBLAS's idle threads spin for 2**28 cycles (~0.1 s) after every BLAS call before
+        # they sleep, taking the second core from the hash, pyarrow's decoding and the Python
+        # between the calls. 2**16 cycles: 20,000 x 2,000 used 6.0-6.7 CPU seconds instead of
+        # 7.7-8.4 (wall 4.3-4.9 s vs 4.6-5.0 s). Read when numpy loads, so set before that.
+        os.environ.setdefault("OPENBLAS_THREAD_TIMEOUT", "16")
         # The command never forks after rendering, so summary.html may use polars frames.
         from gate.artefacts.frames import use_polars_frames
 

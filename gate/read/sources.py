@@ -25,6 +25,7 @@ from typing import TYPE_CHECKING, Any, Literal, Protocol
 import pyarrow as pa
 
 from gate.errors import TableError, shown
+from gate.read.digest import file_sha256
 
 
 class _OnFirstUse:
@@ -201,20 +202,12 @@ def _parquet_files(folder: Path) -> list[Path]:
 def _hash_files(paths: Sequence[Path], root: Path | None = None) -> str:
     """sha256 of a file's bytes; for a folder, of each file's relative path and hash."""
     if root is None and len(paths) == 1:
-        return _hash_file(paths[0])
+        return file_sha256(paths[0])
     outer = hashlib.sha256()
     for path in paths:
         rel = path.relative_to(root) if root is not None else path
-        outer.update(f"{rel.as_posix()}\0{_hash_file(path)}\n".encode())
+        outer.update(f"{rel.as_posix()}\0{file_sha256(path)}\n".encode())
     return outer.hexdigest()
-
-
-def _hash_file(path: Path) -> str:
-    digest = hashlib.sha256()
-    with path.open("rb") as handle:
-        while block := handle.read(1 << 22):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 class ParquetSource:
@@ -332,7 +325,7 @@ class _SingleFileSource:
         return None
 
     def sha256(self) -> str:
-        return _hash_file(self._path)
+        return file_sha256(self._path)
 
 
 #: What pyarrow's CSV reader converts to float64 (spaces and tabs around the number allowed;
