@@ -33,7 +33,7 @@ def test_started_hash_is_the_files_hash(tmp_path: Path) -> None:
         out = subprocess.run(["sha256sum", str(table)], capture_output=True, text=True,
                              check=True).stdout
         assert out.split()[0] == _sha256(table)
-    assert not digest._started  # taken once: a long-lived process keeps nothing
+    assert str(table.absolute()) not in digest._started  # taken once: nothing is kept
 
 
 def test_a_file_changed_after_the_hash_began_is_hashed_again(tmp_path: Path) -> None:
@@ -73,9 +73,20 @@ def test_a_fifo_is_never_opened(tmp_path: Path) -> None:
 
 
 def test_missing_paths_and_urls_start_nothing(tmp_path: Path) -> None:
+    before = dict(digest._started)
     for name in (tmp_path / "absent.parquet", "postgresql://fleet@db/telemetry", "\0bad"):
         digest.start_file_sha256(name)
-    assert not digest._started
+    assert digest._started == before
+
+
+def test_a_check_that_stops_early_leaves_no_started_hash(tmp_path: Path) -> None:
+    from gate.cli.main import main
+
+    table = tmp_path / "fleet.csv"
+    table.write_text("odometer_km\n1\n2\n3\n")
+    assert main(["check", str(table), "--out", str(tmp_path / "out"), "--quiet",
+                 "--policy", str(tmp_path / "absent.yaml")]) == 2  # the policy is missing
+    assert str(table.absolute()) not in digest._started
 
 
 def test_command_records_the_files_hash(tmp_path: Path) -> None:

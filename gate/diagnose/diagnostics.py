@@ -168,9 +168,13 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
         scales = np.asarray(np.ldexp(scaled_norms, gram.exponent))
     means = gram.mean
     nc = plan.columns
-    correlation = np.full((p, p), np.nan)
-    if nc.size:
-        correlation[np.ix_(nc, nc)] = correlation_block(gram.scaled_comoment, nc, plan.scale)
+    block = plan.correlation if plan.correlation is not None else \
+        correlation_block(gram.scaled_comoment, nc, plan.scale)
+    if nc.size == p:
+        correlation = block
+    else:
+        correlation = np.full((p, p), np.nan)
+        correlation[np.ix_(nc, nc)] = block
 
     rt, route, factor_scale = _standardised_factor(gram, plan, factor)
     unit_scales = scaled_norms.copy()  # the scale that makes each column of rt unit length

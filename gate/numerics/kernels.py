@@ -44,10 +44,10 @@ def cholesky_or_none(matrix: FloatArray) -> FloatArray | None:
     if matrix.size == 0:
         return np.zeros((0, 0))
     try:
-        lower = np.linalg.cholesky(matrix)  # L L' = matrix, so R = L'
+        r: FloatArray = np.asarray(np.linalg.cholesky(matrix, upper=True), dtype=np.float64)
+        # R'R = matrix, already C-ordered (numpy >= 2.0): no copy of a transposed L
     except np.linalg.LinAlgError:
         return None
-    r = np.ascontiguousarray(lower.T)
     return r if np.all(np.isfinite(r)) and np.all(np.diag(r) > 0) else None
 
 

@@ -87,3 +87,13 @@ def file_sha256(path: Path) -> str:
             except OSError:
                 pass
     return _digest(path)[1]
+
+
+def forget_file_sha256(path: str | Path) -> None:
+    """Drop a started hash nobody took (the check stopped early); its thread finishes alone."""
+    try:
+        key = str(Path(path).absolute())
+    except (OSError, ValueError):
+        return
+    with _lock:
+        _started.pop(key, None)

@@ -80,6 +80,9 @@ class ExactPassPlan:
     gram_vif_error_bound: float
     cholesky: FloatArray | None = field(default=None, repr=False)  # Rt when the Gram route serves
     cholesky_inverse: FloatArray | None = field(default=None, repr=False)  # its inverse (kernels.triangular_inverse)
+    #: The correlation matrix of ``columns`` the Cholesky factor came from (the Gram route),
+    #: handed to the diagnostics so that it is formed once per check.
+    correlation: FloatArray | None = field(default=None, repr=False)
 
     def empty_factor(self) -> TriangularFactor:
         """The exact pass's starting factor: an intercept column, then the kept columns."""
@@ -131,7 +134,7 @@ def plan_exact_pass(gram: CentredGram, *, tolerance: float | None = None) -> Exa
         return ExactPassPlan(constant, True, certified, columns, centre, col_scale, exponent,
                              tol, bound)
     return ExactPassPlan(constant, False, certified, columns, centre, col_scale, exponent, tol,
-                         bound, rt, rt_inverse)
+                         bound, rt, rt_inverse, corr)
 
 
 def exact_pass_block(plan: ExactPassPlan, values: FloatArray,
