@@ -10,6 +10,7 @@ the machine.
 
 from __future__ import annotations
 
+import importlib.util
 import os
 import subprocess
 import sys
@@ -88,3 +89,20 @@ def test_check_with_html_renders_from_polars_without_importing_pandas(tmp_path: 
     assert {"polars", "great_tables"} <= modules
     assert "pandas" not in modules
     assert "meter_2" in (tmp_path / "o" / "summary.html").read_text()
+
+
+@pytest.mark.skipif(importlib.util.find_spec("IPython") is None,
+                    reason="IPython is not installed here, so nothing could import it")
+@pytest.mark.parametrize("command", ["check", "check-files"])
+def test_rendering_commands_never_import_ipython(tmp_path: Path, command: str) -> None:
+    """great-tables asks on every render whether it runs in an IPython terminal by importing
+    IPython (0.45 s where Jupyter is installed); the `gate` command answers "not installed".
+    A blocked import still leaves one line in -X importtime, a real one loads IPython.core."""
+    rng = np.random.default_rng(20_261_202)  # invented bike-share dock counts
+    values = rng.standard_normal((120, 3))
+    pq.write_table(pa.table({f"docks_{j}": values[:, j] for j in range(3)}),
+                   tmp_path / "docks.parquet")
+    modules, _ = imported_modules("-m", "gate", command, "docks.parquet", "--out", "o",
+                                  cwd=tmp_path)
+    assert "great_tables" in modules
+    assert not {m for m in modules if m.startswith("IPython.")}

@@ -132,11 +132,6 @@ def _preload_html_writer() -> None:
     the writer's own import reports it."""
     import threading
 
-    # great-tables probes for IPython on every render to guess the notebook it runs in; in this
-    # command-line process there is none, and importing IPython costs ~0.45 s. A None entry
-    # makes that probe's import fail at once (it handles ImportError and renders plain HTML).
-    sys.modules.setdefault("IPython", None)  # type: ignore[arg-type]
-
     def load() -> None:
         try:
             import great_tables  # noqa: F401

@@ -31,6 +31,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         # between the calls. 2**16 cycles: 20,000 x 2,000 used 6.0-6.7 CPU seconds instead of
         # 7.7-8.4 (wall 4.3-4.9 s vs 4.6-5.0 s). Read when numpy loads, so set before that.
         os.environ.setdefault("OPENBLAS_THREAD_TIMEOUT", "16")
+        # great-tables asks on every render whether it runs in an IPython terminal, importing
+        # IPython to find out (0.45 s where Jupyter is installed); polars asks the same. This
+        # process is the `gate` command, never an IPython shell, so a None entry makes that
+        # import fail at once (both handle ImportError and take their plain-script defaults).
+        # Here rather than in `check` alone: `check-files` and `demo` render too.
+        sys.modules.setdefault("IPython", None)  # type: ignore[arg-type]
         # The command never forks after rendering, so summary.html may use polars frames.
         from gate.artefacts.frames import use_polars_frames
 
