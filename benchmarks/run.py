@@ -194,6 +194,11 @@ def main(argv: Sequence[str] | None = None) -> int:
                         "DuckDB always, PostgreSQL when its server binaries are present; "
                         "streamed, push-down and exported to Parquet first (optional section)")
     args = parser.parse_args(argv)
+    # The `gate` command lets OpenBLAS's idle threads sleep early (gate.cli.main); the floors and
+    # the peer run with the same setting, so the ratios compare like with like.
+    from gate.cli.main import OPENBLAS_THREAD_TIMEOUT
+
+    os.environ.setdefault("OPENBLAS_THREAD_TIMEOUT", OPENBLAS_THREAD_TIMEOUT)
     sizes = QUICK if args.quick else FULL
     repeat = args.repeat or (1 if args.quick else 2)
 

@@ -18,6 +18,9 @@ from gate.errors import ExitCode, GateError, shown
 #: Exit status when stdout is a pipe the reader closed (`gate diff ... | head -1`): 128 +
 #: SIGPIPE, what a command killed by the signal reports, but quietly and without a traceback.
 EXIT_BROKEN_PIPE = 141
+#: OpenBLAS's idle-thread spin, as log2 of CPU cycles, that the command sets for itself unless the
+#: user set one (see main); the benchmark gives its floors the same.
+OPENBLAS_THREAD_TIMEOUT = "16"
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -30,7 +33,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         # they sleep, taking the second core from the hash, pyarrow's decoding and the Python
         # between the calls. 2**16 cycles: 20,000 x 2,000 used 6.0-6.7 CPU seconds instead of
         # 7.7-8.4 (wall 4.3-4.9 s vs 4.6-5.0 s). Read when numpy loads, so set before that.
-        os.environ.setdefault("OPENBLAS_THREAD_TIMEOUT", "16")
+        os.environ.setdefault("OPENBLAS_THREAD_TIMEOUT", OPENBLAS_THREAD_TIMEOUT)
         # great-tables asks on every render whether it runs in an IPython terminal, importing
         # IPython to find out (0.45 s where Jupyter is installed); polars asks the same. This
         # process is the `gate` command, never an IPython shell, so a None entry makes that
