@@ -156,23 +156,32 @@ def spectrum(r: FloatArray, *, vectors: bool) -> Spectrum:
     """Singular values (and right vectors) of a square factor: from r'r when its eigenvalues
     certify a condition number of at most ``EIGEN_ROUTE_CONDITION``, else from the SVD of r.
     The computed eigenvalues carry an absolute error of a small multiple of eps * lambda_max,
-    so the ratio they show is the true one to many digits whenever it is this small."""
-    with np.errstate(all="ignore"):  # an overflowing product falls through to the SVD
-        gram = r.T @ r
-        if bool(np.all(np.isfinite(gram))):
-            if vectors:
-                lam, v = np.linalg.eigh(gram)  # ascending
-            else:
-                lam, v = np.linalg.eigvalsh(gram), None
-            if lam[0] > 0.0 and lam[-1] <= EIGEN_ROUTE_CONDITION**2 * lam[0]:
-                mu = np.sqrt(lam[::-1])
-                return Spectrum(mu, None if v is None else np.ascontiguousarray(v[:, ::-1].T),
-                                "eigh")
+    so the ratio they show is the true one to many digits whenever it is this small. A factor
+    above the limit pays for both (the eigen-decomposition is about 0.4 of the SVD's time)."""
+    found = _eigen_spectrum(r, vectors=vectors)  # its p x p arrays are freed when it returns
+    if found is not None:
+        return found
     if vectors:
         u, mu, vt = np.linalg.svd(r, full_matrices=False)  # LAPACK dgesdd
         del u  # p x p, not needed: freed before the proportions are formed
         return Spectrum(mu, vt, "svd")
     return Spectrum(np.asarray(np.linalg.svd(r, compute_uv=False), dtype=np.float64), None, "svd")
+
+
+def _eigen_spectrum(r: FloatArray, *, vectors: bool) -> Spectrum | None:
+    with np.errstate(all="ignore"):  # an overflowing product falls through to the SVD
+        gram = r.T @ r
+        if not bool(np.all(np.isfinite(gram))):
+            return None
+        if vectors:
+            lam, v = np.linalg.eigh(gram)  # ascending
+        else:
+            lam, v = np.linalg.eigvalsh(gram), None
+    del gram
+    if not (lam[0] > 0.0 and lam[-1] <= EIGEN_ROUTE_CONDITION**2 * lam[0]):
+        return None
+    mu = np.sqrt(lam[::-1])
+    return Spectrum(mu, None if v is None else np.ascontiguousarray(v[:, ::-1].T), "eigh")
 
 
 def belsley_kuh_welsch(r: FloatArray) -> tuple[FloatArray, FloatArray]:
