@@ -320,3 +320,36 @@ def test_integer_weights_equal_repeated_rows(frame: pd.DataFrame, weight_seed: i
     assert_close(weighted.vif, repeated.vif, rtol=1e-9)
     assert_close(weighted.condition.indices, repeated.condition.indices, rtol=1e-9)
     assert weighted.rows == int(np.count_nonzero(weights))
+
+
+@PROPERTY_SETTINGS
+@given(seed=st.integers(0, 2**32 - 1), order=st.integers(1, 40),
+       log_condition=st.floats(0.0, 2.0))
+def test_eigen_route_agrees_with_the_svd(seed: int, order: int, log_condition: float) -> None:
+    """While the condition number is at most 100, ``kernels.spectrum`` reads singular values and
+    right vectors off the eigen-decomposition of r'r; they must agree with numpy's SVD of r
+    (itself accurate to about eps * condition) to 1e-11 in the indices and, wherever the
+    singular values are apart (vectors are defined), in the proportions."""
+    from gate.numerics.kernels import EIGEN_ROUTE_CONDITION, belsley_kuh_welsch, spectrum
+
+    rng = np.random.default_rng(seed)
+    left, _ = np.linalg.qr(rng.normal(size=(2 * order + 3, order)))
+    right, _ = np.linalg.qr(rng.normal(size=(order, order)))
+    mu = 10.0 ** rng.uniform(-log_condition, 0.0, order)
+    mu[0], mu[-1] = 1.0, 10.0 ** -log_condition
+    r = np.linalg.qr((left * mu) @ right.T, mode="r")
+    found = spectrum(r, vectors=True)
+    _, expected_mu, vt = np.linalg.svd(r)
+    condition = expected_mu[0] / expected_mu[-1]
+    if condition < EIGEN_ROUTE_CONDITION * (1 - 1e-9):  # the limit itself may go either way
+        assert found.method == "eigh"
+    elif condition > EIGEN_ROUTE_CONDITION * (1 + 1e-9):
+        assert found.method == "svd"
+    np.testing.assert_allclose(found.mu, expected_mu, rtol=1e-11, atol=0)
+    indices, proportions = belsley_kuh_welsch(r)
+    gaps = np.abs(np.subtract.outer(expected_mu, expected_mu)) + np.eye(order)
+    assume(gaps.min() > 1e-3 * expected_mu[0])  # vectors of near-equal values are not defined
+    phi = (vt.T / expected_mu) ** 2
+    reference = (phi / phi.sum(axis=1, keepdims=True)).T  # mu descending: indices ascending
+    np.testing.assert_allclose(indices, expected_mu[0] / expected_mu, rtol=1e-11)
+    np.testing.assert_allclose(proportions, reference, rtol=0, atol=1e-10)
