@@ -70,6 +70,21 @@ def test_a_fifo_is_never_opened(tmp_path: Path) -> None:
     threading.Thread(target=start, daemon=True).start()
     assert done.wait(5), "starting a hash on a FIFO blocked"
     assert str(fifo.absolute()) not in digest._started
+    # A path swapped for a FIFO after that check: hashing refuses it instead of waiting for
+    # a writer.
+    failed: list[BaseException] = []
+
+    def hash_it() -> None:
+        try:
+            digest.file_sha256(fifo)
+        except OSError as exc:
+            failed.append(exc)
+
+    worker = threading.Thread(target=hash_it, daemon=True)
+    worker.start()
+    worker.join(5)
+    assert not worker.is_alive(), "hashing a FIFO blocked"
+    assert failed and "not a regular file" in str(failed[0])
 
 
 def test_missing_paths_and_urls_start_nothing(tmp_path: Path) -> None:

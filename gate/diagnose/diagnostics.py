@@ -24,7 +24,8 @@ From the factor: VIF_j = squared norm of row j of inv(Rt) (= [corr^-1]_jj); GVIF
 (Fox & Monette 1992, JASA 87:178-183) as det(corr_GG) det([corr^-1]_GG); Belsley, Kuh & Welsch
 (1980, ch. 3) condition indices and variance-decomposition proportions from the singular values
 and right vectors of the scaled factor of [1, X] (``kernels.spectrum``: an eigen-decomposition of
-its cross-product while the condition number is at most 100, its SVD above); exact dependencies from column-pivoted QR of Rt (Businger & Golub 1965).
+its cross-product while the condition number is at most 100, its SVD above); exact dependencies
+from column-pivoted QR of Rt (Businger & Golub 1965).
 Features inside an exact dependency have infinite VIF; every other VIF is computed on the
 design with one column per dependency dropped, which spans the same space, so it is exact.
 """

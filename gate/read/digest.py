@@ -38,8 +38,13 @@ def _digest(path: Path) -> tuple[_Identity | None, str]:
     """sha256 of the file's bytes, and the file's identity if it did not change while it was
     read (else None)."""
     digest = hashlib.sha256()
-    with path.open("rb") as handle:
-        before = _identity(os.fstat(handle.fileno()))
+    # O_NONBLOCK: a path swapped for a FIFO after the caller's check must not hang the open.
+    fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))
+    with os.fdopen(fd, "rb") as handle:
+        info = os.fstat(handle.fileno())
+        if not stat.S_ISREG(info.st_mode):
+            raise OSError(f"{path} is not a regular file")
+        before = _identity(info)
         while block := handle.read(BLOCK):
             digest.update(block)
         after = _identity(os.fstat(handle.fileno()))
