@@ -306,6 +306,33 @@ def test_encode_block_layout_and_values() -> None:
     np.testing.assert_array_equal(values, [[1.5, 0.0, 1.0, 1.0], [4.0, 1.0, 0.0, 0.0]])
 
 
+def test_encoded_sums_and_magnitudes_are_those_of_the_block() -> None:
+    """encode_rows takes each column's sum and largest magnitude while writing it; they must be
+    bit for bit what numpy's reductions over the finished block give (the main pass uses them
+    for the chunk mean and the range check), and absent when rows are dropped."""
+    from gate.design.plan import encode_rows
+
+    rng = np.random.default_rng(20_261_202)  # invented depot readings over mixed magnitudes
+    rows = 1_000
+    frame = pd.DataFrame({"odometer_km": rng.normal(5e4, 2e4, rows),
+                          "tyre_mm": -rng.gamma(2.0, 1e-3, rows),
+                          "tiny": rng.normal(0, 1e-200, rows),
+                          "depot": rng.choice(["north", "south", "east"], rows),
+                          "electric": rng.random(rows) > 0.5})
+    source = ArrowTableSource(pa.Table.from_pandas(frame, preserve_index=False))
+    plan = plan_design(source, policy())
+    for chunk in source.chunks(plan.read_columns, 333):
+        block = encode_rows(plan, chunk)
+        assert block.used is None and block.sums is not None and block.largest is not None
+        assert np.array_equal(block.sums, block.values.sum(axis=0))
+        assert np.array_equal(block.largest, np.abs(block.values).max(axis=0))
+    frame.loc[3, "tyre_mm"] = np.nan
+    source = ArrowTableSource(pa.Table.from_pandas(frame, preserve_index=False))
+    (chunk,) = list(source.chunks(plan.read_columns, 10_000))
+    block = encode_rows(plan, chunk)
+    assert block.used is not None and block.sums is None and block.largest is None
+
+
 def test_finish_design_names_and_selection() -> None:
     frame = pd.DataFrame({"load_t": [1.0, 2.0, 3.0, 5.0], "depot": ["b", "a", "c", "a"]})
     source = from_dataframe(frame)

@@ -93,7 +93,7 @@ def main_pass(source: TableSource, plan: DesignPlan, *, chunk_rows: int | None =
     counts = RowCounts()
     for _, block in encoded_chunks(source, plan, plan.read_columns, chunk_rows=chunk_rows,
                                    progress=progress, reuse=True):
-        if merged is None and within_plain_range(block.values):
+        if merged is None and within_plain_range(block.values, block.largest):
             running.add(block.values, block.weights, sums=block.sums)
         else:
             # A column near the ends of the float range (squares would over- or underflow):
@@ -111,12 +111,14 @@ def main_pass(source: TableSource, plan: DesignPlan, *, chunk_rows: int | None =
 PLAIN_RANGE = (2.0**-400, 2.0**400)
 
 
-def within_plain_range(values: FloatArray) -> bool:
-    """Whether every nonzero value of the block lies within PLAIN_RANGE in magnitude (two
-    column reductions, no temporary block)."""
+def within_plain_range(values: FloatArray, largest: FloatArray | None = None) -> bool:
+    """Whether every nonzero value of the block lies within PLAIN_RANGE in magnitude.
+    ``largest``: each column's largest magnitude if known (``EncodedBlock.largest``), else two
+    column reductions of the block."""
     if values.size == 0:
         return True
-    largest = np.maximum(values.max(axis=0), -values.min(axis=0))
+    if largest is None:
+        largest = np.maximum(values.max(axis=0), -values.min(axis=0))
     if not bool(np.all(largest < PLAIN_RANGE[1])):
         return False
     small = (largest > 0.0) & (largest < PLAIN_RANGE[0])
