@@ -152,7 +152,8 @@ def _verdict_from_gram(runner: Engine, source: TableSource, plan: DesignPlan,
                                progress=progress) if exact.needs_exact_pass else None
     diagnostics = compute_diagnostics(
         gram, exact, factor=factor, groups=tuple(g.indices for g in design.groups),
-        scaling=policy.limits.condition_number.scaling)
+        scaling=policy.limits.condition_number.scaling,
+        proportions_above=policy.limits.condition_number.max)
     database = _database_provenance(source)
     if factor is not None and database is not None and database["statistics"] == "push-down":
         note = ("exact pass: the database's sums could not settle the rank, so the rows were "

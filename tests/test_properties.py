@@ -353,3 +353,47 @@ def test_eigen_route_agrees_with_the_svd(seed: int, order: int, log_condition: f
     reference = (phi / phi.sum(axis=1, keepdims=True)).T  # mu descending: indices ascending
     np.testing.assert_allclose(indices, expected_mu[0] / expected_mu, rtol=1e-11)
     np.testing.assert_allclose(proportions, reference, rtol=0, atol=1e-10)
+
+
+@PROPERTY_SETTINGS
+@given(seed=st.integers(0, 2**32 - 1), order=st.integers(2, 40),
+       log_condition=st.floats(0.0, 2.5), above=st.floats(1.0, 400.0),
+       at_least=st.integers(0, 8))
+def test_top_rows_agree_with_every_row(seed: int, order: int, log_condition: float,
+                                       above: float, at_least: int) -> None:
+    """``belsley_kuh_welsch_top`` gives every index, and the proportions of every index over
+    ``above`` and of at least the ``at_least`` largest, equal to :func:`belsley_kuh_welsch`'s
+    (itself checked against mpmath); rows before ``first`` are NaN, never stale numbers. Over
+    the eigen route's limit (condition up to 10^2.5 here) it hands over and returns every
+    row."""
+    from gate.numerics.kernels import (
+        EIGEN_ROUTE_CONDITION,
+        belsley_kuh_welsch,
+        belsley_kuh_welsch_top,
+        rows_wanted,
+    )
+
+    rng = np.random.default_rng(seed)
+    left, _ = np.linalg.qr(rng.normal(size=(2 * order + 3, order)))
+    right, _ = np.linalg.qr(rng.normal(size=(order, order)))
+    mu = 10.0 ** rng.uniform(-log_condition, 0.0, order)
+    mu[0], mu[-1] = 1.0, 10.0 ** -log_condition
+    r = np.linalg.qr((left * mu) @ right.T, mode="r")
+    indices, proportions = belsley_kuh_welsch(r)
+    top = belsley_kuh_welsch_top(r, above=above, at_least=at_least, min_order=1)
+    np.testing.assert_allclose(top.indices, indices, rtol=1e-11)
+    wanted = rows_wanted(top.indices, above, at_least)
+    condition = float(indices[-1])
+    if top.first:  # the tridiagonal route served: only below the limit, for few rows
+        assert condition <= EIGEN_ROUTE_CONDITION * (1 + 1e-9) and 2 * wanted <= order
+        assert top.first == order - wanted
+    elif condition < EIGEN_ROUTE_CONDITION * (1 - 1e-9) and 0 < 2 * wanted <= order:
+        raise AssertionError("the tridiagonal route should have served")
+    assert np.isnan(top.proportions[:top.first]).all()
+    assert not np.isnan(top.proportions[top.first:]).any()
+    # Vectors of near-equal singular values are not defined: compare where they are apart.
+    sv = np.sort(top.indices[0] / top.indices)[::-1]
+    gaps = np.abs(np.subtract.outer(sv, sv)) + np.eye(order)
+    assume(gaps.min() > 1e-3 * sv[0])
+    np.testing.assert_allclose(top.proportions[top.first:], proportions[top.first:], rtol=0,
+                               atol=1e-10)

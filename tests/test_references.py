@@ -6,6 +6,7 @@ the end of the pytest run, under "accuracy against outside references".
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from typing import Any
 
@@ -487,6 +488,33 @@ def test_spectrum_routes_match_mpmath_svd(condition: float, method: str,
                     proportion_error)
     index_tolerance = 1e-12 if condition < 1e3 else 1e-15 * condition * 100
     assert errors.max() < index_tolerance
+    assert proportion_error < 1e-11
+
+
+@pytest.mark.parametrize(("condition", "first"), [(10.0, 12), (90.0, 12), (120.0, 0)])
+def test_top_rows_route_matches_mpmath_svd(condition: float, first: int,
+                                           record_accuracy: Recorder) -> None:
+    # belsley_kuh_welsch_top: every index from the eigenvalues of the tridiagonal form of r'r
+    # (LAPACK dsytrd + dsterf), the proportions of the largest indices alone from the
+    # eigenvectors of those (dstebz + dstein, back-transformed by dormqr) and the diagonal of
+    # inv(r'r) (squared row norms of inv(r)). Reference: mpmath's SVD of the same factor at 40
+    # digits. At condition 120 (over EIGEN_ROUTE_CONDITION) it must hand over to the SVD and
+    # return every row.
+    from gate.numerics.kernels import belsley_kuh_welsch_top
+
+    r = _factor_with_condition(16, condition, SEED + 7 + int(condition))
+    top = belsley_kuh_welsch_top(r, above=math.inf, at_least=4, min_order=1)
+    expected_indices, expected_proportions = _mp_bkw(r)
+    assert top.first == first
+    assert np.isnan(top.proportions[:first]).all()
+    errors = relative_errors(top.indices, expected_indices)
+    proportion_error = float(np.max(np.abs(top.proportions[first:]
+                                           - expected_proportions[first:])))
+    route = "top rows" if first else "svd fallback"
+    record_accuracy(f"BKW indices ({route}) vs mpmath 40-digit SVD", float(errors.max()))
+    record_accuracy(f"BKW proportions ({route}, absolute) vs mpmath 40-digit SVD",
+                    proportion_error)
+    assert errors.max() < 1e-12
     assert proportion_error < 1e-11
 
 

@@ -37,6 +37,7 @@ import numpy as np
 
 from gate.artefacts.files import write_atomic
 from gate.artefacts.frames import frame_library
+from gate.diagnose.diagnostics import PROPORTION_ROWS
 from gate.judge.findings import LEVELS, Finding, counts_text
 from gate.judge.rules import (
     INTERCEPT_NAME,
@@ -73,7 +74,9 @@ MAX_MATRIX_FEATURES = 20
 #: the minimum.
 MAX_CONDITION_ROWS = 20
 MIN_CONDITION_INDICES = 3
-MAX_CONDITION_INDICES = 6
+#: The check computes the proportions of this many of the largest indices besides those over
+#: the limit, so the table never asks for more.
+MAX_CONDITION_INDICES = PROPORTION_ROWS
 
 CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:"
 
@@ -774,10 +777,10 @@ def _condition_section(verdict: Verdict) -> str:
     breaching = [k for k in order if index_breaches(float(cond.indices[k]), limit.max)]
     shown = order[:min(max(len(breaching) + 1, MIN_CONDITION_INDICES), MAX_CONDITION_INDICES)]
     judged = [k for k in shown if k in breaching]
-    props = cond.proportions
+    props = {k: cond.shares(k) for k in shown}
     width = len(cond.columns)
-    involved = {c for k in judged for c in range(width) if props[k, c] >= limit.proportion}
-    peak = props[np.ix_(shown, list(range(width)))].max(axis=0)
+    involved = {c for k in judged for c in range(width) if props[k][c] >= limit.proportion}
+    peak = np.vstack([props[k] for k in shown]).max(axis=0)
     # Involved columns first (design order, intercept first), then by largest proportion.
     ordered = sorted(range(width), key=lambda c: (c not in involved,
                                                   0.0 if c in involved else -float(peak[c]), c))
@@ -795,7 +798,7 @@ def _condition_section(verdict: Verdict) -> str:
         column = cond.columns[c]
         row: dict[str, Any] = {"column": INTERCEPT_NAME if column == INTERCEPT else names[column]}
         for k, key in zip(shown, keys):
-            share = float(props[k, c])
+            share = float(props[k][c])
             hit = k in judged and share >= limit.proportion
             row[key] = f"{share:.2f}" + (_PROPORTION_MARK if hit else "")
             if hit:

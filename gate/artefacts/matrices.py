@@ -43,7 +43,7 @@ def matrices(verdict: Verdict) -> dict[str, np.ndarray]:
         "inverse_correlation": d.inverse_correlation,
         "vif": d.vif,
         "condition_indices": cond.indices,
-        "proportions": cond.proportions,
+        "proportions": cond.all_proportions(),
         "proportion_columns": np.array(
             [INTERCEPT_NAME if c == INTERCEPT else names[c] for c in cond.columns], dtype=str),
         "condition_scaling": np.array(cond.scaling),

@@ -44,6 +44,7 @@ from gate.numerics.kernels import (
     IntArray,
     Scaling,
     belsley_kuh_welsch,
+    belsley_kuh_welsch_top,
     correlation_block,
     gvif,
     scaled_design_factor,
@@ -93,15 +94,42 @@ class GroupInflation:
         return float(self.gvif ** (1.0 / self.df))
 
 
+#: The largest condition indices whose proportions a check computes beyond those over the
+#: policy's limit (summary.html shows up to this many; verdict.json and the judge read only
+#: those over the limit). verdict.with_full_matrices' matrices.npz asks for every row.
+PROPORTION_ROWS = 6
+
+
 @dataclass(frozen=True)
 class ConditionDiagnostics:
-    """Belsley-Kuh-Welsch condition indices (ascending) and proportions[k, j]."""
+    """Belsley-Kuh-Welsch condition indices (ascending) and proportions[k, j].
+
+    ``proportions[k]`` exists for ``k >= first_row`` (the largest indices; read them through
+    :meth:`shares`); rows before it were not computed (NaN) and :meth:`all_proportions`
+    computes every row from ``factor`` on request.
+    """
 
     scaling: Scaling
     indices: FloatArray
     proportions: FloatArray
     columns: tuple[int, ...]  # design column of each proportions column; INTERCEPT = -1
     reduced: bool  # computed with one column per exact dependency dropped
+    first_row: int = 0
+    factor: FloatArray | None = None  # the scaled factor, kept while rows are missing
+
+    def shares(self, k: int) -> FloatArray:
+        """The proportions on condition index ``k`` (one per entry of ``columns``)."""
+        if not self.first_row <= k < self.indices.size:
+            raise IndexError(f"proportions of condition index {k} were not computed "
+                             f"(rows {self.first_row}-{self.indices.size - 1} were)")
+        return np.asarray(self.proportions[k])
+
+    def all_proportions(self) -> FloatArray:
+        """Every row of the proportions (computed now if only the largest were)."""
+        if self.first_row == 0:
+            return self.proportions
+        assert self.factor is not None
+        return belsley_kuh_welsch(self.factor)[1]
 
 
 @dataclass(frozen=True)
@@ -161,8 +189,13 @@ class Diagnostics:
 def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
                         factor: TriangularFactor | None = None,
                         groups: tuple[tuple[int, ...], ...] = (),
-                        scaling: Scaling = "unit_length") -> Diagnostics:
-    """All diagnostics from the main-pass statistics (and the exact factor when planned)."""
+                        scaling: Scaling = "unit_length",
+                        proportions_above: float | None = None) -> Diagnostics:
+    """All diagnostics from the main-pass statistics (and the exact factor when planned).
+
+    ``proportions_above``: the policy's condition-index limit, when the caller reads the
+    proportions only of the indices over it and of the :data:`PROPORTION_ROWS` largest (a wide
+    design then skips most eigenvectors); None: every row."""
     p = gram.scaled_mean.shape[0]
     # Scaled units (2**exponent per column) for everything scale-free; data units for output.
     scaled_norms, scaled_means = gram.centred_norms(), gram.scaled_mean
@@ -219,7 +252,7 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
         _group_inflation(g, in_dependency, correlation, inverse_correlation) for g in groups
     )
     condition = _belsley(gram.weight_sum, scaled_means, kept, r_kept, unit_scales, scaling,
-                         reduced=len(dependencies) > 0)
+                         reduced=len(dependencies) > 0, above=proportions_above)
     rank = 1 + kept.size
     return Diagnostics(
         rows=gram.rows, weight_sum=gram.weight_sum, means=means, scales=scales,
@@ -446,7 +479,8 @@ def _refactor_columns(rt: FloatArray, columns: IntArray) -> FloatArray:
 
 
 def _belsley(weight_sum: float, means: FloatArray, kept: IntArray, r_kept: FloatArray,
-             scales: FloatArray, scaling: Scaling, *, reduced: bool) -> ConditionDiagnostics:
+             scales: FloatArray, scaling: Scaling, *, reduced: bool,
+             above: float | None = None) -> ConditionDiagnostics:
     """Condition indices and variance-decomposition proportions (Belsley, Kuh & Welsch 1980).
 
     unit_length: the factor of [1, X] is [[sqrt(W), sqrt(W) m'], [0, R11]] with R11 the factor of
@@ -455,8 +489,12 @@ def _belsley(weight_sum: float, means: FloatArray, kept: IntArray, r_kept: Float
     to unit length.
     """
     r, columns = scaled_design_factor(weight_sum, means, kept, r_kept, scales, scaling)
-    indices, proportions = belsley_kuh_welsch(r)
-    return ConditionDiagnostics(scaling, indices, proportions, columns, reduced)
+    if above is None:
+        indices, proportions = belsley_kuh_welsch(r)
+        return ConditionDiagnostics(scaling, indices, proportions, columns, reduced)
+    rows = belsley_kuh_welsch_top(r, above=above, at_least=PROPORTION_ROWS)
+    return ConditionDiagnostics(scaling, rows.indices, rows.proportions, columns, reduced,
+                                rows.first, r if rows.first else None)
 
 
 

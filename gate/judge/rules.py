@@ -176,7 +176,8 @@ def _condition_findings(d: Diagnostics, names: tuple[str, ...], policy: Policy) 
         index = float(cond.indices[k])
         if not index_breaches(index, limit.max):
             break
-        shares = [(c, float(cond.proportions[k, pos])) for pos, c in enumerate(cond.columns)]
+        row = cond.shares(k)
+        shares = [(c, float(row[pos])) for pos, c in enumerate(cond.columns)]
         chosen = set(involved_columns(shares, limit.proportion))
         if len(chosen) < 2:
             diffuse.append(index)

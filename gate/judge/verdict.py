@@ -203,9 +203,9 @@ class Verdict:
                 "condition_indices": [finite_or_none(v) for v in cond.indices],
                 "variance_proportions": [
                     {"index": finite_or_none(cond.indices[k]),
-                     "proportions": {_name(c, names): finite_or_none(cond.proportions[k, pos])
-                                     for pos, c in enumerate(cond.columns)
-                                     if cond.proportions[k, pos] >= 0.01}}
+                     "proportions": {_name(c, names): finite_or_none(share)
+                                     for c, share in zip(cond.columns, cond.shares(k).tolist())
+                                     if share >= 0.01}}
                     for k in breaching
                 ],
                 "rank": d.rank,
