@@ -106,3 +106,21 @@ def test_rendering_commands_never_import_ipython(tmp_path: Path, command: str) -
                                   cwd=tmp_path)
     assert "great_tables" in modules
     assert not {m for m in modules if m.startswith("IPython.")}
+
+
+def test_scipy_preload_only_for_factors_that_take_the_top_rows_route() -> None:
+    """``preload_top_rows`` starts scipy.linalg's import on a thread for a factor of order
+    TOP_ROWS_MIN_ORDER or more (the route that needs it), and does nothing below it."""
+    script = (
+        "import sys, threading\n"
+        "from gate.numerics.kernels import TOP_ROWS_MIN_ORDER, preload_top_rows\n"
+        "preload_top_rows(TOP_ROWS_MIN_ORDER - 1)\n"
+        "before = 'scipy.linalg' in sys.modules or len(threading.enumerate())\n"
+        "preload_top_rows(TOP_ROWS_MIN_ORDER)\n"
+        "for t in threading.enumerate():\n"
+        "    if t.name == 'gate-preload-scipy':\n"
+        "        t.join()\n"
+        "print(before, 'scipy.linalg' in sys.modules)\n")
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                          cwd=ROOT, check=True, timeout=120)
+    assert done.stdout.split() == ["1", "True"]  # below: no import, no thread; at: imported
