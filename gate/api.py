@@ -21,8 +21,9 @@ from gate.errors import DesignError, TableError
 from gate.judge.findings import Finding, status_of
 from gate.judge.rules import judge
 from gate.judge.verdict import TableInfo, Verdict, tool_version
-from gate.numerics.kernels import preload_top_rows
+from gate.numerics.kernels import TOP_ROWS_MIN_ORDER
 from gate.policy.models import Policy, load_policy, today_utc
+from gate.preload import preload_modules
 from gate.read.sources import DaskFrameSource, TableSource, open_table
 from gate.stats.accumulators import CentredGram
 from gate.stats.local import Engine, LocalEngine, ProgressFactory
@@ -58,7 +59,10 @@ def check(table: Any, policy: Policy | str | Path | None = None, *, label: str |
     digest = _hash_in_background(source)
     with _engine(source, engine, scheduler) as runner:
         plan = plan_design(source, policy, distinct=runner.distinct_values)
-        preload_top_rows(len(plan.layout) + 1)  # the scaled factor's order, at most
+        if len(plan.layout) + 1 >= TOP_ROWS_MIN_ORDER:  # the scaled factor's order, at most
+            # The top-rows route of the condition diagnostics needs scipy.linalg (0.25 s to
+            # import): loaded beside the main pass instead of after it.
+            preload_modules("scipy.linalg", thread_name="gate-preload-scipy")
         full_gram, counts = runner.main_pass(source, plan, chunk_rows=chunk_rows,
                                              progress=progress)
         verdict = _verdict_from_gram(runner, source, plan, full_gram, counts, policy,

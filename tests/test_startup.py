@@ -108,19 +108,41 @@ def test_rendering_commands_never_import_ipython(tmp_path: Path, command: str) -
     assert not {m for m in modules if m.startswith("IPython.")}
 
 
-def test_scipy_preload_only_for_factors_that_take_the_top_rows_route() -> None:
-    """``preload_top_rows`` starts scipy.linalg's import on a thread for a factor of order
-    TOP_ROWS_MIN_ORDER or more (the route that needs it), and does nothing below it."""
+def test_preload_modules_loads_on_a_thread_and_ignores_failures() -> None:
     script = (
         "import sys, threading\n"
-        "from gate.numerics.kernels import TOP_ROWS_MIN_ORDER, preload_top_rows\n"
-        "preload_top_rows(TOP_ROWS_MIN_ORDER - 1)\n"
-        "before = 'scipy.linalg' in sys.modules or len(threading.enumerate())\n"
-        "preload_top_rows(TOP_ROWS_MIN_ORDER)\n"
-        "for t in threading.enumerate():\n"
-        "    if t.name == 'gate-preload-scipy':\n"
-        "        t.join()\n"
-        "print(before, 'scipy.linalg' in sys.modules)\n")
+        "from gate.preload import preload_modules\n"
+        "assert 'xml.dom.minidom' not in sys.modules\n"
+        "preload_modules('gate_no_such_module', 'xml.dom.minidom', thread_name='t')\n"
+        "[t.join() for t in threading.enumerate() if t.name == 't']\n"
+        "preload_modules('xml.dom.minidom', thread_name='again')\n"
+        "print('xml.dom.minidom' in sys.modules,\n"
+        "      any(t.name == 'again' for t in threading.enumerate()))\n")
     done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
                           cwd=ROOT, check=True, timeout=120)
-    assert done.stdout.split() == ["1", "True"]  # below: no import, no thread; at: imported
+    assert done.stdout.split() == ["True", "False"]  # loaded; nothing left to start
+
+
+def test_check_preloads_scipy_only_when_the_top_rows_route_will_run(tmp_path: Path) -> None:
+    """A design whose scaled factor reaches TOP_ROWS_MIN_ORDER has scipy.linalg imported
+    beside the main pass (the route needs it); the small-table test above shows that a
+    narrower design never loads scipy. The limit is lowered here so a 6-column table reaches
+    it."""
+    rng = np.random.default_rng(20_260_516)  # invented bike-dock counts
+    values = rng.standard_normal((120, 6))
+    pq.write_table(pa.table({f"dock_{j}": values[:, j] for j in range(6)}),
+                   tmp_path / "docks.parquet")
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    seen = []
+    for limit in ("gate.api.TOP_ROWS_MIN_ORDER", "7"):  # as shipped (control), then lowered
+        script = (
+            "import sys, threading\n"
+            "import gate.api\n"
+            f"gate.api.TOP_ROWS_MIN_ORDER = {limit}\n"
+            "gate.api.check('docks.parquet')\n"
+            "[t.join() for t in threading.enumerate() if t.name == 'gate-preload-scipy']\n"
+            "print('scipy.linalg' in sys.modules)\n")
+        done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                              cwd=tmp_path, env=env, check=True, timeout=120)
+        seen.append(done.stdout.strip())
+    assert seen == ["False", "True"]

@@ -241,28 +241,6 @@ def belsley_kuh_welsch_top(r: FloatArray, *, above: float, at_least: int,
     return ConditionRows(indices, proportions, 0)
 
 
-def preload_top_rows(order: int) -> None:
-    """Import scipy.linalg on a daemon thread when a factor of this order will take
-    :func:`belsley_kuh_welsch_top`'s route, so the import (about 0.25 s, holding the GIL only
-    in slices) overlaps the main pass, whose reading and BLAS calls release the GIL. The
-    route's own import then finds the module, or waits for it under Python's per-module
-    import lock; an import that fails here is left to that import, which reports it."""
-    import sys
-
-    if order < TOP_ROWS_MIN_ORDER or "scipy.linalg" in sys.modules:
-        return
-    import importlib
-    import threading
-
-    def run() -> None:
-        try:
-            importlib.import_module("scipy.linalg")
-        except ImportError:
-            pass
-
-    threading.Thread(target=run, name="gate-preload-scipy", daemon=True).start()
-
-
 def rows_wanted(indices: FloatArray, above: float, at_least: int) -> int:
     """How many of the largest indices :func:`belsley_kuh_welsch_top` gives proportions for."""
     return min(int(indices.size), max(int(np.count_nonzero(indices > above)), at_least))
