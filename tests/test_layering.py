@@ -22,6 +22,7 @@ EXAMPLES = ROOT / "examples"  # installed as gate.examples
 #: The stages in data-flow order; each entry is a top-level module or folder of ``gate/``.
 STAGES: list[str] = [
     "errors",     # exception tree; imports nothing of gate at run time
+    "preload",    # import modules on a thread beside GIL-free work (standard library only)
     "numerics",   # the only copy of each numerical kernel (pure numpy/scipy, no gate imports)
     "policy",     # policy models, the only YAML reader, the starter policy
     "read",       # table sources: files, folders, frames; provenance

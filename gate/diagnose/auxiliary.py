@@ -104,7 +104,7 @@ def auxiliary_for(d: Diagnostics, feature: int) -> Auxiliary | None:
     or when no other column is left to regress on."""
     if d.in_dependency[feature] or not np.isfinite(d.vif[feature]):
         return None
-    kept = np.flatnonzero(np.isfinite(np.diag(d.inverse_correlation)))
+    kept = d.kept
     if feature not in kept or kept.size < 2:
         return None
     position = int(np.searchsorted(kept, feature))

@@ -329,7 +329,7 @@ def centred_vifs(d: Diagnostics, feature: int, parents: tuple[int, ...], slope: 
     co-moment A' M A with M = diag(s) C diag(s) the main pass's co-moment matrix.
     """
     # the design with one column per exact dependency dropped, as the diagnostics use it
-    kept = np.flatnonzero(np.isfinite(np.diag(d.inverse_correlation)))
+    kept = d.kept
     position = {int(c): k for k, c in enumerate(kept)}
     if feature not in position or any(p not in position for p in parents):
         return None
