@@ -2,11 +2,13 @@
 ``gate.numerics.kernels.belsley_kuh_welsch_top``) reports exactly what a check that computes
 every row reports: the same findings, verdict.json, summary.html, and matrices.npz.
 
-Data: scikit-learn's bundled wine recognition data (178 x 13), with standardized scaling and a
-condition-index limit of 4, so several indices breach and the judge, verdict.json and the page
-read rows near the edge of those computed. The route serves from order
-``TOP_ROWS_MIN_ORDER`` (1,500) up; the tests lower that order for this table, so the same code
-runs on 13 columns.
+Data: scikit-learn's bundled wine recognition data (178 x 13), twice: with standardized
+scaling and a condition-index limit of 4, and with unit-length scaling (the intercept's row
+and column) without the alcohol column (whose offset puts the condition number over the eigen
+route's limit of 100) and a limit of 25 (proportions from 0.3). Several indices breach in both, so the judge,
+verdict.json and the page read rows near the edge of those computed. The route serves from
+order ``TOP_ROWS_MIN_ORDER`` (1,500) up; the tests lower that order for these tables, so the
+same code runs on 13 columns.
 """
 
 from __future__ import annotations
@@ -27,35 +29,47 @@ from gate.artefacts.verdict_json import verdict_json
 from gate.diagnose.diagnostics import PROPORTION_ROWS
 from gate.numerics import kernels
 
-POLICY = """
-policy_version: 1
-name: wine-rows
-limits:
-  condition_number:
-    max: 4
-    scaling: standardized
-"""
+#: scaling -> (condition-index limit, variance proportion, columns left out)
+CASES = {"standardized": (4.0, 0.5, ()), "unit_length": (25.0, 0.3, ("alcohol",))}
 
 
-def _wine() -> pd.DataFrame:
+def _policy(scaling: str) -> str:
+    limit, proportion, _ = CASES[scaling]
+    return f"""
+    policy_version: 1
+    name: wine-rows
+    limits:
+      condition_number:
+        max: {limit:g}
+        proportion: {proportion:g}
+        scaling: {scaling}
+    """
+
+
+def _wine(scaling: str) -> pd.DataFrame:
     data = load_wine()
-    return pd.DataFrame(data.data, columns=[str(c) for c in data.feature_names])
+    frame = pd.DataFrame(data.data, columns=[str(c) for c in data.feature_names])
+    return frame.drop(columns=list(CASES[scaling][2]))
 
 
-def _checks(monkeypatch: pytest.MonkeyPatch) -> tuple[gate.Verdict, gate.Verdict]:
-    policy = policy_from(POLICY)
-    every = gate.check(_wine(), policy, label="wine")
+def _checks(monkeypatch: pytest.MonkeyPatch, scaling: str) -> tuple[gate.Verdict, gate.Verdict]:
+    policy = policy_from(_policy(scaling))
+    every = gate.check(_wine(scaling), policy, label="wine")
     monkeypatch.setattr(kernels, "TOP_ROWS_MIN_ORDER", 2)
-    top = gate.check(_wine(), policy, label="wine")
+    top = gate.check(_wine(scaling), policy, label="wine")
     return every, top
 
 
-def test_top_rows_route_serves_and_leaves_no_stale_rows(monkeypatch: pytest.MonkeyPatch
-                                                        ) -> None:
-    every, top = _checks(monkeypatch)
+SCALINGS = pytest.mark.parametrize("scaling", sorted(CASES))
+
+
+@SCALINGS
+def test_top_rows_route_serves_and_leaves_no_stale_rows(monkeypatch: pytest.MonkeyPatch,
+                                                        scaling: str) -> None:
+    every, top = _checks(monkeypatch, scaling)
     full, part = every.diagnostics.condition, top.diagnostics.condition
     assert full.first_row == 0
-    over = int(np.count_nonzero(part.indices > 4))
+    over = int(np.count_nonzero(part.indices > CASES[scaling][0]))
     assert 2 <= over <= PROPORTION_ROWS  # breaching rows, few enough for the route to serve
     wanted = max(over, PROPORTION_ROWS)
     assert part.first_row == part.indices.size - wanted
@@ -82,9 +96,10 @@ def _assert_same(a: Any, b: Any, where: str = "") -> None:
         assert a == b, where
 
 
-def test_findings_and_artefacts_do_not_depend_on_the_route(monkeypatch: pytest.MonkeyPatch
-                                                           ) -> None:
-    every, top = _checks(monkeypatch)
+@SCALINGS
+def test_findings_and_artefacts_do_not_depend_on_the_route(monkeypatch: pytest.MonkeyPatch,
+                                                           scaling: str) -> None:
+    every, top = _checks(monkeypatch, scaling)
     assert [f.message for f in top.findings] == [f.message for f in every.findings]
     assert any("near dependency" in f.message for f in top.findings)
     # The two routes' eigenvalues differ in the last bit (dsterf vs dsyevd): numbers agree to

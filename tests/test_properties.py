@@ -397,3 +397,34 @@ def test_top_rows_agree_with_every_row(seed: int, order: int, log_condition: flo
     assume(gaps.min() > 1e-3 * sv[0])
     np.testing.assert_allclose(top.proportions[top.first:], proportions[top.first:], rtol=0,
                                atol=1e-10)
+
+
+@PROPERTY_SETTINGS
+@given(seed=st.integers(0, 2**32 - 1), p=st.integers(1, 25), log_offset=st.floats(-3.0, 3.0),
+       scaling=st.sampled_from(["unit_length", "standardized"]))
+def test_proportion_denominators_from_the_kept_inverse(seed: int, p: int, log_offset: float,
+                                                       scaling: str) -> None:
+    """``inverse_cross_product_diagonal`` (O(k^2), from inv(R) of the kept columns) equals the
+    squared row norms of the inverse of ``scaled_design_factor``'s r (what it replaces), for
+    any subset of the columns in any order, columns far from or near zero."""
+    from gate.numerics.kernels import (
+        _upper_inverse,
+        inverse_cross_product_diagonal,
+        scaled_design_factor,
+        squared_row_norms,
+    )
+
+    rng = np.random.default_rng(seed)
+    rows = 3 * p + 5
+    x = rng.normal(size=(rows, p)) * 10.0 ** rng.uniform(-2, 2, p) \
+        + 10.0 ** log_offset * rng.normal(size=p)
+    means = x.mean(axis=0)
+    scales = np.linalg.norm(x - means, axis=0)
+    kept = rng.permutation(p)[:rng.integers(1, p + 1)]
+    r_kept = np.linalg.qr((x - means)[:, kept] / scales[kept], mode="r")
+    r_kept = r_kept * np.where(np.diag(r_kept) < 0, -1.0, 1.0)[:, None]
+    factor, _ = scaled_design_factor(float(rows), means, kept, r_kept, scales, scaling)
+    expected = squared_row_norms(_upper_inverse(factor))
+    found = inverse_cross_product_diagonal(float(rows), means, kept, r_kept,
+                                           _upper_inverse(r_kept), scales, scaling)
+    np.testing.assert_allclose(found, expected, rtol=1e-9)

@@ -48,6 +48,7 @@ from gate.numerics.kernels import (
     belsley_kuh_welsch_top,
     correlation_block,
     gvif,
+    inverse_cross_product_diagonal,
     scaled_design_factor,
     squared_row_norms,
     triangular_inverse,
@@ -268,7 +269,8 @@ def compute_diagnostics(gram: CentredGram, plan: ExactPassPlan, *,
         for g in groups
     )
     condition = _belsley(gram.weight_sum, scaled_means, kept, r_kept, unit_scales, scaling,
-                         reduced=len(dependencies) > 0, above=proportions_above)
+                         reduced=len(dependencies) > 0, above=proportions_above,
+                         r_inverse=r_inverse)
     rank = 1 + kept.size
     return Diagnostics(
         rows=gram.rows, weight_sum=gram.weight_sum, means=means, scales=scales,
@@ -496,7 +498,8 @@ def _refactor_columns(rt: FloatArray, columns: IntArray) -> FloatArray:
 
 def _belsley(weight_sum: float, means: FloatArray, kept: IntArray, r_kept: FloatArray,
              scales: FloatArray, scaling: Scaling, *, reduced: bool,
-             above: float | None = None) -> ConditionDiagnostics:
+             above: float | None = None, r_inverse: FloatArray | None = None
+             ) -> ConditionDiagnostics:
     """Condition indices and variance-decomposition proportions (Belsley, Kuh & Welsch 1980).
 
     unit_length: the factor of [1, X] is [[sqrt(W), sqrt(W) m'], [0, R11]] with R11 the factor of
@@ -508,7 +511,10 @@ def _belsley(weight_sum: float, means: FloatArray, kept: IntArray, r_kept: Float
     if above is None:
         indices, proportions = belsley_kuh_welsch(r)
         return ConditionDiagnostics(scaling, indices, proportions, columns, reduced)
-    rows = belsley_kuh_welsch_top(r, above=above, at_least=PROPORTION_ROWS)
+    denominators = None if r_inverse is None else inverse_cross_product_diagonal(
+        weight_sum, means, kept, r_kept, r_inverse, scales, scaling)
+    rows = belsley_kuh_welsch_top(r, above=above, at_least=PROPORTION_ROWS,
+                                  denominators=denominators)
     return ConditionDiagnostics(scaling, rows.indices, rows.proportions, columns, reduced,
                                 rows.first, r if rows.first else None)
 

@@ -219,7 +219,8 @@ class ConditionRows(NamedTuple):
 
 
 def belsley_kuh_welsch_top(r: FloatArray, *, above: float, at_least: int,
-                           min_order: int | None = None) -> ConditionRows:
+                           min_order: int | None = None,
+                           denominators: FloatArray | None = None) -> ConditionRows:
     """:func:`belsley_kuh_welsch` for a caller that reads the proportions of the largest
     indices only: rows for every index > ``above`` and for at least the ``at_least`` largest.
 
@@ -228,13 +229,14 @@ def belsley_kuh_welsch_top(r: FloatArray, *, above: float, at_least: int,
     kept: dsytrd reduces r'r = Q T Q', dsterf gives every eigenvalue of T, dstebz (bisection)
     and dstein (inverse iteration) the eigenvectors of T for the smallest eigenvalues asked
     for, and dormqr applies Q to them. The denominators sum_k v_jk^2 / mu_k^2 need every
-    vector; they are the diagonal of inv(r'r), i.e. the squared row norms of inv(r)
+    vector; they are the diagonal of inv(r'r): ``denominators`` when the caller has them
+    (:func:`inverse_cross_product_diagonal`), else the squared row norms of inv(r)
     (:func:`_upper_inverse`). Anything else (smaller orders, a condition number over the
     limit, most rows asked for, a LAPACK error) takes :func:`belsley_kuh_welsch`: every row.
     ``min_order`` defaults to :data:`TOP_ROWS_MIN_ORDER` (read at call time).
     """
     if r.shape[0] >= max(TOP_ROWS_MIN_ORDER if min_order is None else min_order, 2):
-        found = _top_rows_tridiagonal(r, above, at_least)
+        found = _top_rows_tridiagonal(r, above, at_least, denominators)
         if found is not None:
             return found
     indices, proportions = belsley_kuh_welsch(r)
@@ -246,7 +248,8 @@ def rows_wanted(indices: FloatArray, above: float, at_least: int) -> int:
     return min(int(indices.size), max(int(np.count_nonzero(indices > above)), at_least))
 
 
-def _top_rows_tridiagonal(r: FloatArray, above: float, at_least: int) -> ConditionRows | None:
+def _top_rows_tridiagonal(r: FloatArray, above: float, at_least: int,
+                          denominators: FloatArray | None) -> ConditionRows | None:
     n = r.shape[0]
     # Upper-triangular and nonsingular (every scaled design factor is): inv(r) below.
     if np.any(np.tril(r, -1)) or not np.all(np.diag(r) != 0.0):
@@ -291,9 +294,9 @@ def _top_rows_tridiagonal(r: FloatArray, above: float, at_least: int) -> Conditi
         if info != 0:
             return None
         z[1:] = rotated
-    with np.errstate(all="ignore"):
-        inverse = _upper_inverse(np.ascontiguousarray(r))
-    denominators = squared_row_norms(inverse)
+    if denominators is None or not bool(np.all(np.isfinite(denominators))):
+        with np.errstate(all="ignore"):
+            denominators = squared_row_norms(_upper_inverse(np.ascontiguousarray(r)))
     if not bool(np.all(np.isfinite(denominators) & (denominators > 0.0))):
         return None
     first = n - count
@@ -331,20 +334,52 @@ def scaled_design_factor(weight_sum: float, means: FloatArray, kept: IntArray,
     """
     if scaling == "standardized":
         return r_kept, tuple(int(k) for k in kept)
-    root_w = np.sqrt(weight_sum)
+    top, spread = _unit_length_parts(weight_sum, means, kept, scales)
     k = kept.size
-    # Each column is divided by a power of two near max(|m_j|, s_j) before anything is
-    # multiplied or squared (exact; column scaling is what the unit-length step does anyway),
-    # so columns near 1e308 or 1e-308 neither overflow nor underflow.
+    r = np.zeros((k + 1, k + 1))
+    r[0, 0] = 1.0
+    r[0, 1:] = top
+    np.multiply(r_kept, spread, out=r[1:, 1:])
+    r /= np.sqrt(np.einsum("ij,ij->j", r, r))  # unit-length columns
+    return r, (INTERCEPT, *(int(c) for c in kept))
+
+
+def _unit_length_parts(weight_sum: float, means: FloatArray, kept: IntArray,
+                       scales: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """First row sqrt(W) m_j u_j and column scales s_j u_j of the unit-length factor before its
+    columns are normalised. u_j is a power of two near max(|m_j|, s_j), applied before anything
+    is multiplied or squared (exact; column scaling is what the unit-length step does anyway),
+    so columns near 1e308 or 1e-308 neither overflow nor underflow."""
     m, s = means[kept], scales[kept]
     _, exponent = np.frexp(np.maximum(np.abs(m), s))
     unit = np.ldexp(1.0, -np.clip(exponent, -1020, 1023))
-    r = np.zeros((k + 1, k + 1))
-    r[0, 0] = 1.0
-    r[0, 1:] = root_w * (m * unit)
-    r[1:, 1:] = r_kept * (s * unit)
-    r = r / np.linalg.norm(r, axis=0)
-    return r, (INTERCEPT, *(int(c) for c in kept))
+    return np.sqrt(weight_sum) * (m * unit), s * unit
+
+
+def inverse_cross_product_diagonal(weight_sum: float, means: FloatArray, kept: IntArray,
+                                   r_kept: FloatArray, r_kept_inverse: FloatArray,
+                                   scales: FloatArray, scaling: Scaling) -> FloatArray:
+    """diag(inv(r'r)) of :func:`scaled_design_factor`'s r (the denominators of the
+    variance-decomposition proportions, sum_k v_jk^2 / mu_k^2), from inv(r_kept) in O(k^2)
+    instead of inverting r.
+
+    standardized: r = r_kept, so the squared row norms of inv(r_kept) (the VIFs). unit_length:
+    r = r0 D^-1 with r0 = [[1, a'], [0, R C]] (a the first row, C = diag(c) the column scales of
+    :func:`_unit_length_parts`, D the column norms of r0), so inv(r) = D inv(r0) and
+    inv(r0) = [[1, -(a/c)' inv(R)], [0, C^-1 inv(R)]]: row 0 has squared norm
+    1 + ||(a/c)' inv(R)||^2 and row j the squared norm of row j of inv(R) over c_j^2, each
+    times D_j^2 = a_j^2 + c_j^2 ||R e_j||^2.
+    """
+    rows = squared_row_norms(r_kept_inverse)
+    if scaling == "standardized":
+        return rows
+    top, spread = _unit_length_parts(weight_sum, means, kept, scales)
+    with np.errstate(all="ignore"):  # beyond the float range: not finite, callers fall back
+        norms = np.concatenate(([1.0], top**2 + spread**2 * np.einsum("ij,ij->j", r_kept,
+                                                                      r_kept)))
+        through = (top / spread) @ r_kept_inverse
+        inner = np.concatenate(([1.0 + float(through @ through)], rows / spread**2))
+        return np.asarray(norms * inner)
 
 
 def condition_indices(weight_sum: float, means: FloatArray, kept: IntArray, r_kept: FloatArray,
