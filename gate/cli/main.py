@@ -8,6 +8,7 @@ and exit 2; anything else is a bug and exits 3 with its traceback. Every command
 from __future__ import annotations
 
 import argparse
+import gc
 import os
 import sys
 import traceback
@@ -25,6 +26,31 @@ OPENBLAS_THREAD_TIMEOUT = "16"
 
 def main(argv: Sequence[str] | None = None) -> int:
     if argv is None:  # this process is the `gate` command, not a caller of main([...])
+        try:
+            return _run(None)
+        finally:
+            _end_quickly()
+    return _run(argv)
+
+
+def _end_quickly() -> None:
+    """The command's work is done (every artefact written and closed, output flushed) and the
+    interpreter is about to exit. Its teardown collects the cycles of every loaded module
+    (pydantic's models, polars, great-tables): 0.06-0.09 s after a small table's check, 0.19 s
+    with the HTML summary and 0.2-0.25 s after a 2,000-feature check, measured on the benchmark
+    machine. Frozen objects are left to the operating system instead; exit handlers still run
+    (temporary folders, a Dask cluster's shutdown), only cyclic garbage is not collected."""
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):
+            pass
+    gc.disable()
+    gc.freeze()
+
+
+def _run(argv: Sequence[str] | None) -> int:
+    if argv is None:
         # pydantic looks for third-party plugins (an entry-point scan of every installed
         # package, ~30 ms) before building the first model; the policy models of a command
         # have no use for them. A value the user set is kept.
