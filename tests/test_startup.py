@@ -170,3 +170,25 @@ def test_the_command_leaves_its_objects_to_the_operating_system_at_exit() -> Non
                           cwd=ROOT, check=True, timeout=120)
     seen = [line.split()[1:] for line in done.stdout.splitlines() if line.startswith("GC ")]
     assert seen == [["True", "True"], ["False", "True"]]
+
+
+def test_the_command_collects_less_often_and_callers_keep_their_thresholds() -> None:
+    script = (
+        "import gc, sys\n"
+        "from gate.cli.main import GC_THRESHOLDS, main\n"
+        "before = gc.get_threshold()\n"
+        "try:\n"
+        "    main(['policy', 'init', '--help'])\n"
+        "except SystemExit:\n"
+        "    pass\n"
+        "print('GC', gc.get_threshold() == before)\n"
+        "sys.argv = ['gate', 'policy', 'init', '--help']\n"
+        "try:\n"
+        "    main()\n"
+        "except SystemExit:\n"
+        "    pass\n"
+        "print('GC', gc.get_threshold() == GC_THRESHOLDS)\n")
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                          cwd=ROOT, check=True, timeout=120)
+    seen = [line.split()[1] for line in done.stdout.splitlines() if line.startswith("GC ")]
+    assert seen == ["True", "True"]
