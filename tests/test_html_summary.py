@@ -425,3 +425,54 @@ def test_polars_and_pandas_frames_give_the_same_page() -> None:
                             text=True, timeout=300, check=False)
     assert result.returncode == 0, result.stderr[-3000:]
     assert result.stdout.split()[0] == "3"
+
+
+def _contrast(a: str, b: str) -> float:
+    """WCAG 2 contrast ratio of two #rrggbb colours (https://www.w3.org/TR/WCAG21/)."""
+    def luminance(colour: str) -> float:
+        rgb = [int(colour[i:i + 2], 16) / 255.0 for i in (1, 3, 5)]
+        lin = [c / 12.92 if c <= 0.04045 else ((c + 0.055) / 1.055) ** 2.4 for c in rgb]
+        return 0.2126 * lin[0] + 0.7152 * lin[1] + 0.0722 * lin[2]
+    high, low = sorted((luminance(a), luminance(b)), reverse=True)
+    return (high + 0.05) / (low + 0.05)
+
+
+def test_matrix_colours_follow_the_palette_and_keep_the_ink_readable() -> None:
+    palette = summary._MATRIX_PALETTE
+    stops = np.linspace(-1.0, 1.0, len(palette))
+    for r, colour in zip(stops, palette):
+        assert summary._matrix_colours(float(r))[0] == colour.lower()
+    assert summary._matrix_colours(1.7)[0] == palette[-1].lower()  # clipped to [-1, 1]
+    assert summary._matrix_colours(float("nan")) == (summary._MATRIX_MISSING, "#000000")
+    # Halfway between two stops: each channel halfway (rounded), e.g. -0.75.
+    mid = summary._matrix_colours(-0.75)[0]
+    a, b = palette[0], palette[1]
+    assert all(abs(int(mid[i:i + 2], 16) - (int(a[i:i + 2], 16) + int(b[i:i + 2], 16)) / 2)
+               <= 0.5 for i in (1, 3, 5))
+    for r in np.linspace(-1.0, 1.0, 81):
+        fill, ink = summary._matrix_colours(float(r))
+        other = "#ffffff" if ink == "#000000" else "#000000"
+        assert _contrast(fill, ink) >= _contrast(fill, other)
+        assert _contrast(fill, ink) >= 4.5  # WCAG AA for normal text
+
+
+def test_matrix_numbers_print_two_decimals_with_a_typographic_minus() -> None:
+    assert summary._matrix_number(-0.2849) == "\u22120.28"
+    assert summary._matrix_number(-0.004) == "0.00"
+    assert summary._matrix_number(1.0) == "1.00"
+    assert summary._matrix_number(float("nan")) == "\u2014"
+
+
+def test_matrix_cells_carry_their_colours(docks_page: str) -> None:
+    cells = re.findall(r'<td style="color: (#[0-9a-fA-F]{6}); background-color: '
+                       r'(#[0-9a-fA-F]{6});"[^>]*headers="matrix-[^>]*>([^<]*)</td>', docks_page)
+    assert cells
+    for ink, fill, text in cells:
+        if text == "\u2014":
+            assert fill.lower() == summary._MATRIX_MISSING
+            continue
+        value = float(text.replace("\u2212", "-"))
+        # the printed value is rounded; its colour comes from the unrounded r
+        expected = {summary._matrix_colours(value + d)[0] for d in np.linspace(-0.005, 0.005, 11)}
+        assert fill.lower() in expected
+        assert _contrast(fill.lower(), ink.lower()) >= 4.5
