@@ -26,6 +26,8 @@ BLOCK = 1 << 22
 
 _Identity = tuple[int, int, int, int]
 _lock = threading.Lock()
+#: Hashes being computed right now (any thread), for :func:`hashing`.
+_running = [0]
 #: Started hashes by absolute path: (thread, result holder).
 _started: dict[str, tuple[threading.Thread, list[tuple[_Identity | None, str] | None]]] = {}
 
@@ -37,6 +39,22 @@ def _identity(st: os.stat_result) -> _Identity:
 def _digest(path: Path) -> tuple[_Identity | None, str]:
     """sha256 of the file's bytes, and the file's identity if it did not change while it was
     read (else None)."""
+    with _lock:
+        _running[0] += 1
+    try:
+        return _digest_file(path)
+    finally:
+        with _lock:
+            _running[0] -= 1
+
+
+def hashing() -> bool:
+    """Whether a table's sha256 is being computed at this moment (on some thread): a pass
+    that shares the machine's cores with it may want fewer threads of its own."""
+    return _running[0] > 0
+
+
+def _digest_file(path: Path) -> tuple[_Identity | None, str]:
     digest = hashlib.sha256()
     # O_NONBLOCK: a path swapped for a FIFO after the caller's check must not hang the open.
     fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))
