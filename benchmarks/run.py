@@ -18,7 +18,8 @@ peak RSS from GNU time), alternating the commands ``--repeat`` times, fastest ke
    ``variance_inflation_factor`` looped over all columns (timed on a sample of columns and
    extrapolated, said in the output) / that first call: target >= 1,000.
 4. 1,000,000 x 100 (row groups of 131,072): ``gate check`` / the STREAMED floor (row group by
-   row group into one reused buffer, centred X'X accumulated): target <= 1.3. 10,000,000 x 50
+   row group into one reused buffer, centred X'X accumulated; run with OpenBLAS's threads and
+   with one, the fastest counting): target <= 1.3. 10,000,000 x 50
    (pyarrow's default 1Mi-row row groups): peak RSS of ``gate check``, target <= 600 MB.
 5. 20,000 x 2,000: ``gate check`` / the streamed floor: target <= 2.5. 20,000 rows x 10,000
    features: completes; time, peak RSS, verdict size and the pairs listed are reported.
@@ -302,7 +303,7 @@ def write_parquet(path: Path, rows: int, columns: int, *, row_group: int | None,
 
 # --- measurements ---------------------------------------------------------------------------------
 
-def run(command: Sequence[str]) -> Run:
+def run(command: Sequence[str], env: dict[str, str] | None = None) -> Run:
     """Wall time and peak RSS of one whole process.
 
     Peak RSS comes from GNU time (``/usr/bin/time -f %M``) when present: a child forked from
@@ -314,7 +315,7 @@ def run(command: Sequence[str]) -> Run:
         prefix = [str(timer), "-f", "%M", "-o", rss_file.name] if timer.exists() else []
         start = time.perf_counter()
         process = subprocess.Popen([*prefix, *command], stdout=subprocess.DEVNULL,
-                                   stderr=subprocess.PIPE)
+                                   stderr=subprocess.PIPE, env=env)
         _, status, usage = os.wait4(process.pid, 0)
         seconds = time.perf_counter() - start
         returncode = os.waitstatus_to_exitcode(status)
@@ -410,8 +411,12 @@ def bench_versus_floor(name: str, table: Path, floor: Path, folder: Path, repeat
                        rss_target_mb: float | None = None) -> dict[str, Any]:
     pair = Pair()
     _progress(f"{name}: {sizes[0]:,} x {sizes[1]:,} ({note or 'default layout'})")
+    # The floor runs with OpenBLAS's threads and with one (the gate limits itself to one while
+    # it hashes; on 2 cores one thread can be the faster floor too): the fastest run counts.
+    one_thread = {**os.environ, "OPENBLAS_NUM_THREADS": "1"}
     for _ in range(repeat):
         pair.floor.append(run([sys.executable, str(floor), str(table)]))
+        pair.floor.append(run([sys.executable, str(floor), str(table)], env=one_thread))
         pair.gate.append(run(gate_command(table, folder / f"out-{name}")))
     result: dict[str, Any] = {
         "rows": sizes[0], "columns": sizes[1], "file_mb": table.stat().st_size / 1e6,

@@ -121,3 +121,35 @@ def test_command_records_the_files_hash(tmp_path: Path) -> None:
     assert done.returncode in (0, 1), done.stderr
     verdict = json.loads((out / "verdict.json").read_text())
     assert verdict["table"]["sha256"] == _sha256(table)
+
+
+def test_the_pass_uses_one_blas_thread_only_while_a_hash_runs(tmp_path: Path) -> None:
+    """While a table is hashed beside the main pass, each chunk's BLAS call gets one thread
+    (the hash holds the other core); once no hash runs, every thread again. A sparse 512 MiB
+    file (no disk space) keeps a real hash busy long enough to look."""
+    import time
+
+    from threadpoolctl import threadpool_info
+
+    from gate.stats.local import _blas_beside_hash
+
+    def blas_threads() -> int:
+        return max(i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas")
+
+    before = blas_threads()
+    big = tmp_path / "sparse.bin"
+    with big.open("wb") as handle:
+        handle.truncate(512 << 20)
+    assert not digest.hashing()
+    digest.start_file_sha256(big)
+    deadline = time.monotonic() + 10.0
+    while not digest.hashing() and time.monotonic() < deadline:
+        time.sleep(0.001)
+    assert digest.hashing()
+    with _blas_beside_hash():
+        inside = blas_threads()
+    assert digest.file_sha256(big) == hashlib.sha256(bytes(512 << 20)).hexdigest()
+    assert not digest.hashing()
+    with _blas_beside_hash():
+        after = blas_threads()
+    assert (inside, after, blas_threads()) == (1, before, before)
