@@ -154,13 +154,15 @@ class Spectrum(NamedTuple):
     method: Literal["eigh", "svd"]
 
 
-def spectrum(r: FloatArray, *, vectors: bool) -> Spectrum:
+def spectrum(r: FloatArray, *, vectors: bool, try_eigen: bool = True) -> Spectrum:
     """Singular values (and right vectors) of a square factor: from r'r when its eigenvalues
     certify a condition number of at most ``EIGEN_ROUTE_CONDITION``, else from the SVD of r.
     The computed eigenvalues carry an absolute error of a small multiple of eps * lambda_max,
     so the ratio they show is the true one to many digits whenever it is this small. A factor
-    above the limit pays for both (the eigen-decomposition is about 0.4 of the SVD's time)."""
-    found = _eigen_spectrum(r, vectors=vectors)  # its p x p arrays are freed when it returns
+    above the limit pays for both (the eigen-decomposition is about 0.4 of the SVD's time).
+    ``try_eigen=False``: the caller's own eigenvalues already showed the condition number over
+    the limit; straight to the SVD."""
+    found = _eigen_spectrum(r, vectors=vectors) if try_eigen else None  # p x p arrays freed
     if found is not None:
         return found
     if vectors:
@@ -186,14 +188,15 @@ def _eigen_spectrum(r: FloatArray, *, vectors: bool) -> Spectrum | None:
     return Spectrum(mu, None if v is None else np.ascontiguousarray(v[:, ::-1].T), "eigh")
 
 
-def belsley_kuh_welsch(r: FloatArray) -> tuple[FloatArray, FloatArray]:
+def belsley_kuh_welsch(r: FloatArray, *, try_eigen: bool = True
+                       ) -> tuple[FloatArray, FloatArray]:
     """Condition indices mu_max / mu_k (ascending) and variance-decomposition proportions
     ``proportions[k, j]`` (each column sums to 1) from the singular values and right vectors of
     the scaled factor ``r`` (Belsley, Kuh & Welsch 1980, "Regression Diagnostics", ch. 3):
     phi_jk = v_jk^2 / mu_k^2, pi_kj = phi_jk / sum_k phi_jk."""
     if r.size == 0:
         return np.ones(0), np.zeros((0, 0))
-    mu, vt, _ = spectrum(r, vectors=True)
+    mu, vt, _ = spectrum(r, vectors=True, try_eigen=try_eigen)
     assert vt is not None
     indices = mu[0] / mu
     phi = (vt.T / mu) ** 2  # phi[j, k] = v_jk^2 / mu_k^2
@@ -235,11 +238,13 @@ def belsley_kuh_welsch_top(r: FloatArray, *, above: float, at_least: int,
     limit, most rows asked for, a LAPACK error) takes :func:`belsley_kuh_welsch`: every row.
     ``min_order`` defaults to :data:`TOP_ROWS_MIN_ORDER` (read at call time).
     """
+    try_eigen = True
     if r.shape[0] >= max(TOP_ROWS_MIN_ORDER if min_order is None else min_order, 2):
         found = _top_rows_tridiagonal(r, above, at_least, denominators)
-        if found is not None:
+        if isinstance(found, ConditionRows):
             return found
-    indices, proportions = belsley_kuh_welsch(r)
+        try_eigen = found  # False: its eigenvalues showed the condition over the limit
+    indices, proportions = belsley_kuh_welsch(r, try_eigen=try_eigen)
     return ConditionRows(indices, proportions, 0)
 
 
@@ -249,31 +254,35 @@ def rows_wanted(indices: FloatArray, above: float, at_least: int) -> int:
 
 
 def _top_rows_tridiagonal(r: FloatArray, above: float, at_least: int,
-                          denominators: FloatArray | None) -> ConditionRows | None:
+                          denominators: FloatArray | None) -> ConditionRows | bool:
+    """The rows, or whether the every-row kernel should still try the eigen route (False when
+    the eigenvalues here showed the condition number over the limit: the SVD serves)."""
     n = r.shape[0]
     # Upper-triangular and nonsingular (every scaled design factor is): inv(r) below.
     if np.any(np.tril(r, -1)) or not np.all(np.diag(r) != 0.0):
-        return None
+        return True
     from scipy.linalg import lapack
 
     with np.errstate(all="ignore"):
         gram = r.T @ r
     if not bool(np.all(np.isfinite(gram))):
-        return None
+        return True
     lwork = int(lapack.dsytrd_lwork(n, lower=1)[0])
     reflectors, d, e, tau, info = lapack.dsytrd(gram, lower=1, lwork=max(lwork, 1),
                                                 overwrite_a=1)
     del gram  # overwritten by the reflectors
     if info != 0:
-        return None
+        return True
     lam, info = lapack.dsterf(d, e)  # every eigenvalue, ascending
-    if info != 0 or not (lam[0] > 0.0 and lam[-1] <= EIGEN_ROUTE_CONDITION**2 * lam[0]):
-        return None
+    if info != 0:
+        return True
+    if not (lam[0] > 0.0 and lam[-1] <= EIGEN_ROUTE_CONDITION**2 * lam[0]):
+        return False
     mu = np.sqrt(lam[::-1])
     indices = np.asarray(mu[0] / mu)
     count = rows_wanted(indices, above, at_least)
     if 2 * count > n:  # most rows: every eigenvector at once is no dearer
-        return None
+        return True
     proportions = np.full((n, n), np.nan)
     if count == 0:
         return ConditionRows(indices, proportions, n)
@@ -282,23 +291,23 @@ def _top_rows_tridiagonal(r: FloatArray, above: float, at_least: int,
     m, w, block, split, info = lapack.dstebz(d, e, 2, 0.0, 0.0, 1, count,
                                              2.0 * float(np.finfo(np.float64).tiny), "B")
     if info != 0 or m != count:
-        return None
+        return True
     z, info = lapack.dstein(d, e, w[:m], block, split)
     if info != 0:
-        return None
+        return True
     z = np.asarray(z)[:, np.argsort(w[:m], kind="stable")]  # ascending, as lam
     # Q = H(1) ... H(n-1): the reflectors of dsytrd (lower) act on rows 1..n-1 (LAPACK dormtr).
     if n > 1:
         rotated, _, info = lapack.dormqr("L", "N", reflectors[1:, :n - 1], tau, z[1:],
                                          lwork=max(1, 64 * count))
         if info != 0:
-            return None
+            return True
         z[1:] = rotated
     if denominators is None or not bool(np.all(np.isfinite(denominators))):
         with np.errstate(all="ignore"):
             denominators = squared_row_norms(_upper_inverse(np.ascontiguousarray(r)))
     if not bool(np.all(np.isfinite(denominators) & (denominators > 0.0))):
-        return None
+        return True
     first = n - count
     # Column i of z belongs to the i-th smallest eigenvalue, i.e. to index position n-1-i.
     phi = z * z / lam[:count]  # phi[j, i] = v_ji^2 / mu^2
