@@ -322,6 +322,17 @@ def test_integer_weights_equal_repeated_rows(frame: pd.DataFrame, weight_seed: i
     assert weighted.rows == int(np.count_nonzero(weights))
 
 
+def _factor_with_spread(seed: int, order: int, log_condition: float) -> np.ndarray:
+    """Upper factor of a (2 order + 3) x order matrix whose singular values are spread at
+    random between 1 and 10^-log_condition, both ends included (invented, seeded)."""
+    rng = np.random.default_rng(seed)
+    left, _ = np.linalg.qr(rng.normal(size=(2 * order + 3, order)))
+    right, _ = np.linalg.qr(rng.normal(size=(order, order)))
+    mu = 10.0 ** rng.uniform(-log_condition, 0.0, order)
+    mu[0], mu[-1] = 1.0, 10.0 ** -log_condition
+    return np.asarray(np.linalg.qr((left * mu) @ right.T, mode="r"))
+
+
 @PROPERTY_SETTINGS
 @given(seed=st.integers(0, 2**32 - 1), order=st.integers(1, 40),
        log_condition=st.floats(0.0, 2.0))
@@ -332,12 +343,7 @@ def test_eigen_route_agrees_with_the_svd(seed: int, order: int, log_condition: f
     singular values are apart (vectors are defined), in the proportions."""
     from gate.numerics.kernels import EIGEN_ROUTE_CONDITION, belsley_kuh_welsch, spectrum
 
-    rng = np.random.default_rng(seed)
-    left, _ = np.linalg.qr(rng.normal(size=(2 * order + 3, order)))
-    right, _ = np.linalg.qr(rng.normal(size=(order, order)))
-    mu = 10.0 ** rng.uniform(-log_condition, 0.0, order)
-    mu[0], mu[-1] = 1.0, 10.0 ** -log_condition
-    r = np.linalg.qr((left * mu) @ right.T, mode="r")
+    r = _factor_with_spread(seed, order, log_condition)
     found = spectrum(r, vectors=True)
     _, expected_mu, vt = np.linalg.svd(r)
     condition = expected_mu[0] / expected_mu[-1]
@@ -373,12 +379,7 @@ def test_top_rows_agree_with_every_row(seed: int, order: int, log_condition: flo
         rows_wanted,
     )
 
-    rng = np.random.default_rng(seed)
-    left, _ = np.linalg.qr(rng.normal(size=(2 * order + 3, order)))
-    right, _ = np.linalg.qr(rng.normal(size=(order, order)))
-    mu = 10.0 ** rng.uniform(-log_condition, 0.0, order)
-    mu[0], mu[-1] = 1.0, 10.0 ** -log_condition
-    r = np.linalg.qr((left * mu) @ right.T, mode="r")
+    r = _factor_with_spread(seed, order, log_condition)
     indices, proportions = belsley_kuh_welsch(r)
     top = belsley_kuh_welsch_top(r, above=above, at_least=at_least, min_order=1)
     np.testing.assert_allclose(top.indices, indices, rtol=1e-11)
