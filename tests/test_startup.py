@@ -148,47 +148,37 @@ def test_check_preloads_scipy_only_when_the_top_rows_route_will_run(tmp_path: Pa
     assert seen == ["False", "True"]
 
 
+def _collector_around_main(setup: str, probe: str) -> list[list[str]]:
+    """In a fresh interpreter: ``probe`` (a Python expression, printed) after ``main([...])``
+    (a caller's process) and after ``main()`` (the command's process), both on a command that
+    exits through argparse."""
+    script = (
+        "import gc, sys\n"
+        f"{setup}\n"
+        "from gate.cli.main import main\n"
+        "for argv in (['policy', 'init', '--help'], None):\n"
+        "    if argv is None:\n"
+        "        sys.argv = ['gate', 'policy', 'init', '--help']\n"
+        "    try:\n"
+        "        main(argv)\n"
+        "    except SystemExit:\n"
+        "        pass\n"
+        f"    print('GC', {probe})\n")
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                          cwd=ROOT, check=True, timeout=120)
+    return [line.split()[1:] for line in done.stdout.splitlines() if line.startswith("GC ")]
+
+
 def test_the_command_leaves_its_objects_to_the_operating_system_at_exit() -> None:
     """As the command (``main()``), the process freezes the collector before it exits (the
     teardown's cycle collection cost 0.06-0.25 s); ``main([...])`` from a caller's process does
     not touch the caller's collector."""
-    script = (
-        "import gc, sys\n"
-        "from gate.cli.main import main\n"
-        "try:\n"
-        "    main(['policy', 'init', '--help'])\n"
-        "except SystemExit:\n"
-        "    pass\n"
-        "print('GC', gc.isenabled(), gc.get_freeze_count() == 0)\n"
-        "sys.argv = ['gate', 'policy', 'init', '--help']\n"
-        "try:\n"
-        "    main()\n"
-        "except SystemExit:\n"
-        "    pass\n"
-        "print('GC', gc.isenabled(), gc.get_freeze_count() > 0)\n")
-    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
-                          cwd=ROOT, check=True, timeout=120)
-    seen = [line.split()[1:] for line in done.stdout.splitlines() if line.startswith("GC ")]
-    assert seen == [["True", "True"], ["False", "True"]]
+    seen = _collector_around_main("", "gc.isenabled(), gc.get_freeze_count() > 0")
+    assert seen == [["True", "False"], ["False", "True"]]
 
 
 def test_the_command_collects_less_often_and_callers_keep_their_thresholds() -> None:
-    script = (
-        "import gc, sys\n"
-        "from gate.cli.main import GC_THRESHOLDS, main\n"
-        "before = gc.get_threshold()\n"
-        "try:\n"
-        "    main(['policy', 'init', '--help'])\n"
-        "except SystemExit:\n"
-        "    pass\n"
-        "print('GC', gc.get_threshold() == before)\n"
-        "sys.argv = ['gate', 'policy', 'init', '--help']\n"
-        "try:\n"
-        "    main()\n"
-        "except SystemExit:\n"
-        "    pass\n"
-        "print('GC', gc.get_threshold() == GC_THRESHOLDS)\n")
-    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
-                          cwd=ROOT, check=True, timeout=120)
-    seen = [line.split()[1] for line in done.stdout.splitlines() if line.startswith("GC ")]
-    assert seen == ["True", "True"]
+    seen = _collector_around_main(
+        "before = gc.get_threshold()\nfrom gate.cli.main import GC_THRESHOLDS",
+        "gc.get_threshold() == before, gc.get_threshold() == GC_THRESHOLDS")
+    assert seen == [["True", "False"], ["False", "True"]]
